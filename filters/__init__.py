@@ -1,0 +1,47 @@
+"""casecloud's numerical core: particle clouds over stochastic epidemic models.
+
+Pure numpy/scipy: no I/O, no asyncio, no Kafka. Every random draw goes
+through a ``numpy.random.Generator`` that is passed in.
+"""
+
+from ._compartmental import CompartmentalModel, ModelError
+from ._expressions import ExpressionError, compile_expression
+from ._filter import FilterConfig, ParticleFilter, StepResult
+from ._linear_gaussian import LocalLevelModel
+from ._model import Model
+from ._observation import Observation, ObservationError, delay_kernel
+from ._particles import ParticleSet
+from ._resampling import RESAMPLERS, resample
+from ._rng import generator_state, restore_generator, stream_generator
+from ._simulate import SimulatedSeason, simulate_season
+from ._summary import Summary, summarise, weighted_quantiles
+from ._weights import effective_sample_size, log_sum_exp, normalised_weights
+
+__all__ = [
+    "CompartmentalModel",
+    "ExpressionError",
+    "FilterConfig",
+    "LocalLevelModel",
+    "Model",
+    "ModelError",
+    "Observation",
+    "ObservationError",
+    "ParticleFilter",
+    "ParticleSet",
+    "RESAMPLERS",
+    "SimulatedSeason",
+    "StepResult",
+    "Summary",
+    "compile_expression",
+    "delay_kernel",
+    "effective_sample_size",
+    "generator_state",
+    "log_sum_exp",
+    "normalised_weights",
+    "resample",
+    "restore_generator",
+    "simulate_season",
+    "stream_generator",
+    "summarise",
+    "weighted_quantiles",
+]

@@ -1,0 +1,58 @@
+"""The protocol every model follows to plug into :class:`ParticleFilter`.
+
+A model is vectorised over particles: each method receives the whole
+:class:`ParticleSet` and works on arrays with a leading particle axis. It
+never holds random state; every draw uses the Generator passed in.
+"""
+
+from __future__ import annotations
+
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+from ._observation import Observation
+from ._particles import ParticleSet
+
+__all__ = ["Model"]
+
+
+@runtime_checkable
+class Model(Protocol):
+    """What the filter needs from a model.
+
+    Required
+    --------
+    initial(n, rng) -> ParticleSet
+        Draw ``n`` particles from the prior at the model's start.
+    advance(particles, t0, t1, rng) -> None
+        Move every particle from day ``t0`` to day ``t1`` in place (t1 > t0).
+    log_likelihood(particles, observation) -> ndarray of shape (n,)
+        Per-particle log-probability of the observation; ``-inf`` where a
+        particle cannot explain it. Must not return NaN.
+    check_observation(observation) -> None
+        Raise ObservationError if the observation can never be assimilated.
+    describe(particles, t) -> dict[str, ndarray of shape (n,)]
+        Named per-particle quantities to summarise (states, parameters, ...).
+    fingerprint() -> str
+        A short stable hash of the model's definition, stored in checkpoints.
+
+    Optional
+    --------
+    static_parameters : ndarray of int
+        Columns of ``params`` that are static (receive Liu-West jitter).
+    to_unconstrained(params) / from_unconstrained(values)
+        Maps between natural and unconstrained scales for those columns.
+    """
+
+    def initial(self, n: int, rng: np.random.Generator) -> ParticleSet: ...
+
+    def advance(self, particles: ParticleSet, t0: int, t1: int, rng: np.random.Generator) -> None: ...
+
+    def log_likelihood(self, particles: ParticleSet, observation: Observation) -> np.ndarray: ...
+
+    def check_observation(self, observation: Observation) -> None: ...
+
+    def describe(self, particles: ParticleSet, t: float) -> dict[str, np.ndarray]: ...
+
+    def fingerprint(self) -> str: ...

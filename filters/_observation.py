@@ -1,0 +1,90 @@
+"""Observations as the engine sees them, and the count-noise likelihoods."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+from scipy.special import gammaln
+
+__all__ = [
+    "Observation",
+    "ObservationError",
+    "poisson_loglik",
+    "negbin_loglik",
+    "binomial_loglik",
+    "delay_kernel",
+]
+
+
+class ObservationError(ValueError):
+    """An observation cannot be assimilated (unknown series, impossible value, wrong time)."""
+
+
+@dataclass(frozen=True)
+class Observation:
+    """Counts for one period.
+
+    ``time`` is the model day the counts refer to (the last day of the week
+    for weekly series); ``values`` maps series name to a count, or ``None``
+    when that series was not reported this period (skipped, not zero).
+    """
+
+    time: int
+    values: Mapping[str, float | None] = field(default_factory=dict)
+
+    def present(self) -> dict[str, float]:
+        return {k: v for k, v in self.values.items() if v is not None}
+
+
+def poisson_loglik(y: float, mu: np.ndarray) -> np.ndarray:
+    """log P(Y = y) for Y ~ Poisson(mu), elementwise over mu; mu = 0 allowed."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = y * np.log(mu) - mu - math.lgamma(y + 1.0)
+    if y == 0:
+        out = -np.asarray(mu, dtype=float)
+    return np.where(np.isnan(out), -np.inf, out)
+
+
+def negbin_loglik(y: float, mu: np.ndarray, size: np.ndarray | float) -> np.ndarray:
+    """log P(Y = y) for a negative binomial with mean mu and size k (variance mu + mu^2/k)."""
+    mu = np.asarray(mu, dtype=float)
+    k = np.asarray(size, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_p_zero = k * (np.log(k) - np.log(k + mu))
+        if y == 0:
+            out = log_p_zero
+        else:
+            out = (
+                gammaln(y + k) - gammaln(k) - math.lgamma(y + 1.0)
+                + log_p_zero + y * (np.log(mu) - np.log(k + mu))
+            )
+    return np.where(np.isnan(out), -np.inf, out)
+
+
+def binomial_loglik(y: float, trials: np.ndarray, p: np.ndarray | float) -> np.ndarray:
+    """log P(Y = y) for Y ~ Binomial(trials, p); -inf where y > trials."""
+    return np.nan_to_num(stats.binom.logpmf(y, trials, p), nan=-np.inf)
+
+
+def delay_kernel(dist: str, mean: float, sd: float, max_days: int) -> np.ndarray:
+    """Probability that a case is reported d = 0..max_days days after it occurs.
+
+    The continuous delay is discretised by rounding to the nearest day
+    (mass on [d - 0.5, d + 0.5), day 0 taking [0, 0.5)) and truncated at
+    ``max_days`` with the kernel renormalised (common practice).
+    """
+    if dist == "gamma":
+        shape = (mean / sd) ** 2
+        cdf = stats.gamma(shape, scale=sd**2 / mean).cdf
+    elif dist == "lognormal":
+        sigma2 = math.log1p((sd / mean) ** 2)
+        cdf = stats.lognorm(math.sqrt(sigma2), scale=math.exp(math.log(mean) - sigma2 / 2)).cdf
+    else:
+        raise ValueError(f"delay distribution {dist!r} not known; allowed: ['gamma', 'lognormal']")
+    edges = np.concatenate([[0.0], np.arange(max_days + 1) + 0.5])
+    mass = np.diff(cdf(edges))
+    return mass / mass.sum()

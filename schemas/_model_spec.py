@@ -1,0 +1,346 @@
+"""The compartmental-model spec: what an analyst writes in TOML.
+
+A spec declares groups (age or risk bands) with populations, compartments,
+flows between them with rate expressions, a contact matrix, parameters
+(fixed, static with a prior, or drifting as a random walk), initial
+conditions and the observed series. See ``schemas/models/*.toml``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+from typing import Annotated, Literal, Union
+
+import orjson
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from ._loading import load_toml_model
+
+__all__ = [
+    "Uniform",
+    "Normal",
+    "LogNormal",
+    "Gamma",
+    "Beta",
+    "Distribution",
+    "Quantity",
+    "Group",
+    "Flow",
+    "Transmission",
+    "Parameter",
+    "InitialValue",
+    "Initial",
+    "Delay",
+    "Noise",
+    "Series",
+    "ModelSpec",
+    "load_model_spec",
+    "RESERVED_NAMES",
+    "EXAMPLE_MODELS",
+    "example_model_path",
+]
+
+Identifier = Annotated[str, Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]*$", max_length=64)]
+RESERVED_NAMES = frozenset({"t", "N", "foi", "imported", "pi"})
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+class Uniform(_Strict):
+    dist: Literal["uniform"]
+    low: float
+    high: float
+
+    @model_validator(mode="after")
+    def _order(self) -> "Uniform":
+        if not self.low < self.high:
+            raise ValueError(f"uniform needs low < high, got low={self.low}, high={self.high}")
+        return self
+
+
+class Normal(_Strict):
+    dist: Literal["normal"]
+    mean: float
+    sd: float = Field(gt=0)
+
+
+class LogNormal(_Strict):
+    dist: Literal["lognormal"]
+    mean_log: float
+    sd_log: float = Field(gt=0)
+
+
+class Gamma(_Strict):
+    dist: Literal["gamma"]
+    shape: float = Field(gt=0)
+    scale: float = Field(gt=0)
+
+
+class Beta(_Strict):
+    dist: Literal["beta"]
+    a: float = Field(gt=0)
+    b: float = Field(gt=0)
+
+
+Distribution = Annotated[Union[Uniform, Normal, LogNormal, Gamma, Beta], Field(discriminator="dist")]
+Quantity = Union[float, Distribution]
+
+
+class Group(_Strict):
+    name: Identifier
+    population: int = Field(gt=0, le=10_000_000_000)
+    values: dict[Identifier, float] = Field(default_factory=dict)
+
+
+class Flow(_Strict):
+    name: Identifier
+    source: Identifier = Field(alias="from")
+    target: Identifier = Field(alias="to")
+    rate: str = Field(min_length=1, max_length=2000)
+    infection: bool = False
+
+
+class Transmission(_Strict):
+    infectious: dict[Identifier, float] = Field(default_factory=dict)
+    importation: str | None = None
+    contact: list[list[Annotated[float, Field(ge=0)]]] | None = None
+
+
+class Parameter(_Strict):
+    kind: Literal["fixed", "static", "drifting"]
+    value: float | None = None
+    prior: Distribution | None = None
+    scale: Literal["identity", "log", "logit"] | None = None
+    volatility: float = Field(default=0.0, ge=0)
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "Parameter":
+        if self.kind == "fixed":
+            if self.value is None:
+                raise ValueError("a fixed parameter needs 'value'")
+            if self.prior is not None:
+                raise ValueError("a fixed parameter takes 'value', not 'prior'")
+        else:
+            if self.prior is None:
+                raise ValueError(f"a {self.kind} parameter needs a 'prior' table")
+            if self.value is not None:
+                raise ValueError(f"a {self.kind} parameter takes 'prior', not 'value'")
+        if self.kind == "drifting" and self.volatility <= 0:
+            raise ValueError("a drifting parameter needs volatility > 0 (random-walk sd per day)")
+        if self.kind != "drifting" and self.volatility:
+            raise ValueError("only drifting parameters take 'volatility'")
+        return self
+
+    @property
+    def bounds(self) -> tuple[float, float]:
+        """Support of the parameter on its natural scale."""
+        prior = self.prior
+        if isinstance(prior, Uniform):
+            return (prior.low, prior.high)
+        if isinstance(prior, Beta):
+            return (0.0, 1.0)
+        if isinstance(prior, (LogNormal, Gamma)):
+            return (0.0, float("inf"))
+        return (float("-inf"), float("inf"))
+
+    @property
+    def transform(self) -> str:
+        """Scale on which drift and jitter act (explicit or implied by the prior)."""
+        if self.scale is not None:
+            return self.scale
+        if isinstance(self.prior, (Uniform, Beta)):
+            return "logit"
+        if isinstance(self.prior, (LogNormal, Gamma)):
+            return "log"
+        return "identity"
+
+
+class InitialValue(_Strict):
+    compartment: Identifier
+    group: Identifier | None = None
+    count: Quantity | None = None
+    fraction: Quantity | None = None
+
+    @model_validator(mode="after")
+    def _one(self) -> "InitialValue":
+        if (self.count is None) == (self.fraction is None):
+            raise ValueError("give exactly one of 'count' or 'fraction'")
+        return self
+
+
+class Initial(_Strict):
+    remainder: Identifier
+    set: list[InitialValue] = Field(default_factory=list)
+
+
+class Delay(_Strict):
+    dist: Literal["gamma", "lognormal"]
+    mean: float = Field(gt=0, le=60)
+    sd: float = Field(gt=0, le=60)
+    max_days: int = Field(ge=1, le=60)
+
+
+class Noise(_Strict):
+    dist: Literal["poisson", "negbin", "binomial"]
+    dispersion: float | Identifier | None = None
+
+    @model_validator(mode="after")
+    def _dispersion(self) -> "Noise":
+        if self.dist == "negbin" and self.dispersion is None:
+            raise ValueError("negbin noise needs 'dispersion' (size k, a number or parameter name)")
+        if self.dist != "negbin" and self.dispersion is not None:
+            raise ValueError(f"{self.dist} noise takes no 'dispersion'")
+        if isinstance(self.dispersion, float) and self.dispersion <= 0:
+            raise ValueError(f"dispersion must be > 0, got {self.dispersion}")
+        return self
+
+
+class Series(_Strict):
+    name: Identifier
+    kind: Literal["incidence", "prevalence"]
+    flow: Identifier | None = None
+    compartment: Identifier | None = None
+    groups: list[Identifier] | None = None
+    reporting: float | Identifier = 1.0
+    delay: Delay | None = None
+    noise: Noise
+    cadence: Literal["daily", "weekly"] = "daily"
+
+    @model_validator(mode="after")
+    def _target(self) -> "Series":
+        if self.kind == "incidence" and (self.flow is None or self.compartment is not None):
+            raise ValueError("an incidence series names a 'flow' (and no 'compartment')")
+        if self.kind == "prevalence" and (self.compartment is None or self.flow is not None):
+            raise ValueError("a prevalence series names a 'compartment' (and no 'flow')")
+        if self.kind == "prevalence" and (self.delay is not None or self.cadence != "daily"):
+            raise ValueError("a prevalence series is a daily snapshot: no 'delay', cadence 'daily'")
+        if self.noise.dist == "binomial" and self.delay is not None:
+            raise ValueError(
+                "binomial noise needs whole-number trials, but a delay kernel makes expected "
+                "counts fractional; use poisson or negbin noise with a delay"
+            )
+        if isinstance(self.reporting, float) and not 0 < self.reporting <= 1:
+            raise ValueError(f"reporting fraction must be in (0, 1], got {self.reporting}")
+        return self
+
+
+class ModelSpec(_Strict):
+    """A validated compartmental model; cross-references are checked here."""
+
+    name: Identifier
+    description: str = ""
+    substeps_per_day: int = Field(default=4, ge=1, le=96)
+    compartments: list[Identifier] = Field(min_length=1, max_length=32)
+    groups: list[Group] = Field(min_length=1, max_length=32)
+    flows: list[Flow] = Field(min_length=1, max_length=128)
+    transmission: Transmission = Field(default_factory=Transmission)
+    parameters: dict[Identifier, Parameter] = Field(default_factory=dict)
+    derived: dict[Identifier, str] = Field(default_factory=dict)
+    initial: Initial
+    series: list[Series] = Field(min_length=1, max_length=64)
+
+    @model_validator(mode="after")
+    def _cross_references(self) -> "ModelSpec":
+        comps = set(self.compartments)
+        groups = [g.name for g in self.groups]
+        problems: list[str] = []
+
+        def dupes(kind: str, names: list[str]) -> None:
+            seen = {n for n in names if names.count(n) > 1}
+            if seen:
+                problems.append(f"{kind} names must be unique, repeated: {sorted(seen)}")
+
+        dupes("compartment", self.compartments)
+        dupes("group", groups)
+        dupes("flow", [f.name for f in self.flows])
+        dupes("series", [s.name for s in self.series])
+        value_keys = {frozenset(g.values) for g in self.groups}
+        if len(value_keys) > 1:
+            problems.append("every group must define the same 'values' keys")
+        names_by_kind = {
+            "compartment": self.compartments,
+            "parameter": list(self.parameters),
+            "derived": list(self.derived),
+            "group value": sorted(set().union(*(g.values for g in self.groups))),
+        }
+        all_names: list[str] = [n for names in names_by_kind.values() for n in names]
+        clash = sorted({n for n in all_names if all_names.count(n) > 1} | (set(all_names) & RESERVED_NAMES))
+        if clash:
+            problems.append(
+                f"names {clash} are used twice or are reserved; compartments, parameters, derived "
+                f"quantities and group values share one namespace, and {sorted(RESERVED_NAMES)} are built in"
+            )
+        for f in self.flows:
+            for end, c in (("from", f.source), ("to", f.target)):
+                if c not in comps:
+                    problems.append(f"flow {f.name!r}: '{end}' = {c!r} is not a compartment; allowed: {self.compartments}")
+            if f.source == f.target:
+                problems.append(f"flow {f.name!r} goes from {f.source!r} to itself")
+        if not any(f.infection for f in self.flows) and self.transmission.infectious:
+            problems.append("transmission.infectious is set but no flow has infection = true")
+        for c in self.transmission.infectious:
+            if c not in comps:
+                problems.append(f"transmission.infectious names {c!r}, not a compartment; allowed: {self.compartments}")
+        g = len(self.groups)
+        contact = self.transmission.contact
+        if contact is None and g > 1:
+            problems.append(f"transmission.contact (a {g}x{g} matrix) is required with {g} groups")
+        if contact is not None and (len(contact) != g or any(len(row) != g for row in contact)):
+            problems.append(f"transmission.contact must be {g}x{g} (one row and column per group)")
+        for name, p in self.parameters.items():
+            if p.transform == "logit" and not all(map(lambda b: abs(b) < float("inf"), p.bounds)):
+                problems.append(f"parameter {name!r}: logit scale needs a bounded prior (uniform or beta)")
+        if self.initial.remainder not in comps:
+            problems.append(f"initial.remainder = {self.initial.remainder!r} is not a compartment; allowed: {self.compartments}")
+        for i, v in enumerate(self.initial.set):
+            if v.compartment not in comps:
+                problems.append(f"initial.set[{i}]: compartment {v.compartment!r} unknown; allowed: {self.compartments}")
+            if v.compartment == self.initial.remainder:
+                problems.append(f"initial.set[{i}]: {v.compartment!r} is the remainder compartment; it takes what is left")
+            if v.group is not None and v.group not in groups:
+                problems.append(f"initial.set[{i}]: group {v.group!r} unknown; allowed: {groups}")
+        flows = {f.name for f in self.flows}
+        for s in self.series:
+            if s.flow is not None and s.flow not in flows:
+                problems.append(f"series {s.name!r}: flow {s.flow!r} unknown; allowed: {sorted(flows)}")
+            if s.compartment is not None and s.compartment not in comps:
+                problems.append(f"series {s.name!r}: compartment {s.compartment!r} unknown; allowed: {self.compartments}")
+            for gname in s.groups or []:
+                if gname not in groups:
+                    problems.append(f"series {s.name!r}: group {gname!r} unknown; allowed: {groups}")
+            for ref, what in ((s.reporting, "reporting"), (s.noise.dispersion, "dispersion")):
+                if isinstance(ref, str) and ref not in self.parameters and ref not in self.derived:
+                    problems.append(
+                        f"series {s.name!r}: {what} = {ref!r} is not a parameter; allowed: {sorted(self.parameters)}"
+                    )
+        if problems:
+            raise ValueError("; ".join(problems))
+        return self
+
+    @property
+    def group_names(self) -> list[str]:
+        return [g.name for g in self.groups]
+
+    def fingerprint(self) -> str:
+        """Stable hash of everything that changes what a particle means."""
+        canonical = orjson.dumps(
+            self.model_dump(mode="json", by_alias=True, exclude={"description"}), option=orjson.OPT_SORT_KEYS)
+        return hashlib.sha256(canonical).hexdigest()[:16]
+
+
+def load_model_spec(path: str | Path) -> ModelSpec:
+    """Read and validate a model spec TOML file (raises SpecError)."""
+    return load_toml_model(ModelSpec, path)
+
+
+EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band")
+
+
+def example_model_path(name: str) -> Path:
+    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``)."""
+    if name not in EXAMPLE_MODELS:
+        raise ValueError(f"no example model {name!r}; allowed: {list(EXAMPLE_MODELS)}")
+    return Path(__file__).with_name("models") / f"{name}.toml"
