@@ -6,6 +6,7 @@ through a ``numpy.random.Generator`` that is passed in.
 
 from ._compartmental import CompartmentalModel, ModelError
 from ._expressions import ExpressionError, compile_expression
+from ._forecast import Forecast, forecast
 from ._filter import FilterConfig, ParticleFilter, StepResult
 from ._linear_gaussian import LocalLevelModel
 from ._model import Model
@@ -21,6 +22,8 @@ __all__ = [
     "CompartmentalModel",
     "ExpressionError",
     "FilterConfig",
+    "Forecast",
+    "forecast",
     "LocalLevelModel",
     "Model",
     "ModelError",

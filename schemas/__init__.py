@@ -1,7 +1,29 @@
 """pydantic models for everything that crosses a boundary: model specs,
 messages in and out, deployment config."""
 
+from ._config import (
+    ENV_OVERRIDES,
+    AlertRule,
+    DeploymentConfig,
+    FileSettings,
+    KafkaSettings,
+    MetricsSettings,
+    ServiceSettings,
+    StreamConfig,
+    load_deployment_config,
+)
 from ._errors import SpecError
+from ._messages import (
+    MAX_COUNT,
+    MESSAGE_MODELS,
+    AlertMessage,
+    DeadLetter,
+    EstimateMessage,
+    ObservationMessage,
+    SourcePosition,
+    json_schema,
+    parse_period,
+)
 from ._loading import load_toml_model, validate_document
 from ._model_spec import (
     RESERVED_NAMES,
@@ -28,6 +50,24 @@ from ._model_spec import (
 )
 
 __all__ = [
+    "ENV_OVERRIDES",
+    "AlertRule",
+    "DeploymentConfig",
+    "FileSettings",
+    "KafkaSettings",
+    "MetricsSettings",
+    "ServiceSettings",
+    "StreamConfig",
+    "load_deployment_config",
+    "MAX_COUNT",
+    "MESSAGE_MODELS",
+    "AlertMessage",
+    "DeadLetter",
+    "EstimateMessage",
+    "ObservationMessage",
+    "SourcePosition",
+    "json_schema",
+    "parse_period",
     "RESERVED_NAMES",
     "Beta",
     "Delay",

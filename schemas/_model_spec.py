@@ -289,10 +289,14 @@ class ModelSpec(_Strict):
         if contact is None and g > 1:
             problems.append(f"transmission.contact (a {g}x{g} matrix) is required with {g} groups")
         if contact is not None and (len(contact) != g or any(len(row) != g for row in contact)):
-            problems.append(f"transmission.contact must be {g}x{g} (one row and column per group)")
+            shape = f"{len(contact)}x" + "/".join(sorted({str(len(row)) for row in contact}) or ["0"])
+            problems.append(f"transmission.contact must be {g}x{g} (one row and column per group), got {shape}")
         for name, p in self.parameters.items():
             if p.transform == "logit" and not all(map(lambda b: abs(b) < float("inf"), p.bounds)):
-                problems.append(f"parameter {name!r}: logit scale needs a bounded prior (uniform or beta)")
+                problems.append(
+                    f"parameter {name!r}: logit scale needs a bounded prior (uniform or beta), "
+                    f"got {p.prior.dist if p.prior is not None else 'no prior'}"
+                )
         if self.initial.remainder not in comps:
             problems.append(f"initial.remainder = {self.initial.remainder!r} is not a compartment; allowed: {self.compartments}")
         for i, v in enumerate(self.initial.set):

@@ -486,6 +486,7 @@ class KafkaBroker:
         self.command: List[str] = []
         self.start_seconds: Optional[float] = None
         self._log_file = None
+        self._log_offset = 0
 
     # -- paths and addresses ------------------------------------------------
 
@@ -543,8 +544,8 @@ class KafkaBroker:
             ports[lst.name] = int(p)
         self.ports = ports
 
-    def _ports_are_fixed(self) -> bool:
-        return all(lst.port is not None for lst in self._listeners) and self._fixed_ports["CONTROLLER"] is not None
+    def _all_ports_free_picked(self) -> bool:
+        return all(lst.port is None for lst in self._listeners) and self._fixed_ports["CONTROLLER"] is None
 
     def server_config(self) -> Dict[str, str]:
         """The properties written to ``server.properties`` (after ports are picked)."""
@@ -729,18 +730,20 @@ class KafkaBroker:
         and wait until it answers ApiVersions and a Metadata request listing
         itself. Raises :class:`BrokerStartError` on failure or timeout (the
         JVM is killed then). Free ports are picked here; if one was taken in
-        the meantime the start is retried with new ports (twice at most)."""
+        the meantime the start is retried with new ports (twice at most; only when no
+        port was given)."""
         if self.is_running():
             raise BrokerStartError(f"broker in {self.work_dir} is already running at {self.bootstrap_servers}")
         ensure_jars(self.jar_dir)
-        attempts = 1 if self._ports_are_fixed() else 3
+        attempts = 3 if self._all_ports_free_picked() else 1
         for attempt in range(1, attempts + 1):
             fresh = not (self.data_dir / "meta.properties").exists()
             try:
                 self._start_once(timeout)
                 return self
             except BrokerStartError as exc:
-                bind_clash = "Address already in use" in str(exc) or "BindException" in str(exc)
+                log = self._attempt_log()
+                bind_clash = "Address already in use" in log or "BindException" in log
                 if attempt < attempts and bind_clash:
                     if fresh:
                         shutil.rmtree(self.data_dir, ignore_errors=True)
@@ -759,6 +762,7 @@ class KafkaBroker:
             # the JVM gets SIGKILL if this process dies without running atexit
             launch = [shutil.which("setpriv"), "--pdeathsig", "KILL", *launch]
         self._log_file = open(self.log_path, "ab")
+        self._log_offset = self._log_file.tell()
         self._log_file.write(f"\n=== start {time.strftime('%Y-%m-%d %H:%M:%S')}: {' '.join(self.command)}\n".encode())
         self._log_file.flush()
         self.proc = subprocess.Popen(
@@ -798,13 +802,29 @@ class KafkaBroker:
                     f"the broker was not ready within {timeout:.0f}s (last readiness check: {last_error})")
             time.sleep(0.1)
 
+    def _attempt_log(self) -> str:
+        """The broker log written since the current start attempt began."""
+        try:
+            with open(self.log_path, "rb") as f:
+                f.seek(self._log_offset)
+                return f.read(8 * 1024 * 1024).decode("utf-8", errors="replace")
+        except OSError:
+            return ""
+
     def _start_error(self, what: str) -> BrokerStartError:
         code = self.proc.returncode if self.proc is not None else None
+        errors = [
+            line[:600] for line in self._attempt_log().splitlines()
+            if any(mark in line for mark in (" ERROR ", " FATAL ", "Exception", "Error:"))
+        ][:12]
         return BrokerStartError(
             f"Kafka broker in {self.work_dir} failed to start: {what}\n"
             f"command: {' '.join(self.command)}\n"
-            f"exit code: {code}\n"
-            f"--- last {LOG_TAIL_LINES} lines of {self.log_path} ---\n{self.log_tail()}"
+            f"exit code: {code}"
+            + (" (killed by this launcher)" if code is not None and (code < 0 or code in (137, 143)) else "")
+            + "\n"
+            + (f"--- first error lines of {self.log_path} ---\n" + "\n".join(errors) + "\n" if errors else "")
+            + f"--- last {LOG_TAIL_LINES} lines of {self.log_path} ---\n{self.log_tail()}"
         )
 
     def _cleanup_after_exit(self) -> None:

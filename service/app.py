@@ -1,0 +1,92 @@
+"""The service loop: receive a record, process it, commit, repeat."""
+
+from __future__ import annotations
+
+import asyncio
+import datetime as dt
+import logging
+from collections.abc import Callable, Sequence
+
+from schemas import DeploymentConfig
+
+from .checkpoints import CheckpointStore, LocalCheckpointStore
+from .http import HealthServer
+from .metrics import Metrics
+from .processor import Outcome, RecordProcessor
+from .streams import StreamRegistry
+from .transports.base import OutRecord, Transport
+
+__all__ = ["Service"]
+
+log = logging.getLogger("casecloud.service")
+
+
+class Service:
+    """Composes transport, registry, processor, checkpoints and metrics.
+
+    ``run`` returns when ``stop`` is set (after finishing the record in
+    flight) or, with ``until_exhausted``, when a finite input is used up.
+    """
+
+    def __init__(
+        self,
+        config: DeploymentConfig,
+        transport: Transport,
+        store: CheckpointStore | None = None,
+        metrics: Metrics | None = None,
+        today: Callable[[], dt.date] = dt.date.today,
+        on_outcome: Callable[[Outcome], None] | None = None,
+    ) -> None:
+        self.config = config
+        self.transport = transport
+        self.store = store or LocalCheckpointStore(config.service.checkpoint_dir, keep=config.service.keep_checkpoints)
+        self.metrics = metrics or Metrics()
+        self.registry = StreamRegistry(config, self.store)
+        self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today)
+        self.on_outcome = on_outcome
+        self.ready = False
+        self.http: HealthServer | None = None
+        self.counts = {"applied": 0, "skipped": 0, "dead_letter": 0}
+
+    async def _on_assign(self, assigned: Sequence[tuple[str, int]]):
+        resume = await asyncio.to_thread(self.registry.resume_offsets, list(assigned))
+        for stream, skipped in self.registry.fallbacks:
+            self.metrics.checkpoint_fallbacks.labels(stream).inc()
+        self.registry.fallbacks.clear()
+        log.info("resuming partitions at %s", resume)
+        return resume
+
+    async def _publish(self, records: list[OutRecord]) -> None:
+        if records:
+            await self.transport.publish(records)
+
+    async def run(self, stop: asyncio.Event | None = None, until_exhausted: bool = False) -> dict[str, int]:
+        stop = stop or asyncio.Event()
+        m = self.config.metrics
+        if m.enabled:
+            self.http = HealthServer(self.metrics.registry, lambda: self.ready, m.host, m.port)
+            await self.http.start()
+            log.info("metrics on http://%s:%s/metrics", m.host, self.http.port)
+        self.metrics.watch_lag(self.transport.lag)
+        lock = getattr(self.transport, "processing", None) or asyncio.Lock()
+        try:
+            await self.transport.start(on_assign=self._on_assign)
+            self.ready = True
+            while not stop.is_set():
+                record = await self.transport.receive(timeout=0.5)
+                if record is None:
+                    if until_exhausted and self.transport.exhausted:
+                        break
+                    continue
+                async with lock:
+                    outcome = await self.processor.handle(record, self._publish)
+                await self.transport.commit(record)
+                self.counts[outcome.status] += 1
+                if self.on_outcome is not None:
+                    self.on_outcome(outcome)
+        finally:
+            self.ready = False
+            await self.transport.stop()
+            if self.http is not None:
+                await self.http.stop()
+        return dict(self.counts)

@@ -1,0 +1,81 @@
+"""The seam between the service and where records come from and go to.
+
+A transport receives input records, publishes output records (awaiting the
+acknowledgement), and commits input positions once their effects are durable.
+Kafka is the production transport; files and memory serve the demo, offline
+replays and tests. Only ``kafka.py`` imports aiokafka.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Awaitable, Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Literal
+
+__all__ = ["Record", "OutRecord", "Transport", "OutputKind", "AssignmentHook"]
+
+OutputKind = Literal["estimates", "alerts", "dead_letters"]
+
+
+@dataclass(frozen=True)
+class Record:
+    """One input record and where it came from."""
+
+    value: bytes
+    key: bytes | None = None
+    headers: tuple[tuple[str, bytes], ...] = ()
+    topic: str = "input"
+    partition: int = 0
+    offset: int = 0
+
+
+@dataclass(frozen=True)
+class OutRecord:
+    kind: OutputKind
+    key: bytes | None
+    value: bytes
+    headers: tuple[tuple[str, bytes], ...] = field(default=())
+
+
+# Called with the newly assigned (topic, partition) pairs; returns where to
+# start reading each one (offset of the next record), or omits it to use the
+# transport's default (committed offset, else the beginning).
+AssignmentHook = Callable[[Sequence[tuple[str, int]]], Awaitable[Mapping[tuple[str, int], int]]]
+
+
+class Transport:
+    """Base class: receive / publish / commit, usable with ``async with``."""
+
+    async def start(self, on_assign: AssignmentHook | None = None) -> None:
+        """Connect. ``on_assign`` is awaited whenever partitions are assigned."""
+
+    async def stop(self) -> None:
+        """Flush and disconnect."""
+
+    async def receive(self, timeout: float = 1.0) -> Record | None:
+        """The next record, or None if none arrived within ``timeout`` seconds."""
+        raise NotImplementedError
+
+    @property
+    def exhausted(self) -> bool:
+        """True when a finite input has been read to its end (never for Kafka)."""
+        return False
+
+    async def publish(self, records: Sequence[OutRecord]) -> None:
+        """Send records and wait until every one is acknowledged."""
+        raise NotImplementedError
+
+    async def commit(self, record: Record) -> None:
+        """Mark ``record`` (and everything before it in its partition) as done."""
+        raise NotImplementedError
+
+    def lag(self) -> dict[tuple[str, int], int]:
+        """Records waiting per (topic, partition), where the transport knows it."""
+        return {}
+
+    async def __aenter__(self) -> "Transport":
+        await self.start()
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        await self.stop()
