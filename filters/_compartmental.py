@@ -20,9 +20,11 @@ from ._expressions import CompiledExpression, ExpressionError, compile_expressio
 from ._observation import (
     Observation,
     ObservationError,
+    _negbin_loglik,
     binomial_loglik,
     delay_kernel,
     negbin_loglik,
+    negbin_size_terms,
     poisson_loglik,
 )
 from ._particles import ParticleSet
@@ -51,6 +53,60 @@ class _CompiledSeries:
     dispersion: float
     dispersion_param: int | None
     weekly: bool
+
+
+def _solve_table(A: list[list], b: list) -> list:
+    """Solve A x = b where A is a small m x m table whose entries are arrays (all of
+    one shape) or numbers, and b a list of m numbers or arrays: one solve per element.
+
+    Gaussian elimination without pivoting, looping over m only; every operation
+    runs over whole arrays. Meant for the transposed transition matrices of the
+    next-generation method, which are diagonally dominant (an M-matrix), where
+    elimination without pivoting is stable.
+    """
+    A = [list(row) for row in A]
+    x = list(b)
+    m = len(A)
+    for k in range(m):
+        for i in range(k + 1, m):
+            if isinstance(A[i][k], float) and A[i][k] == 0.0:
+                continue
+            factor = A[i][k] / A[k][k]
+            for j in range(k, m):
+                A[i][j] = A[i][j] - factor * A[k][j]
+            x[i] = x[i] - factor * x[k]
+    for i in range(m - 1, -1, -1):
+        rest = x[i]
+        for j in range(i + 1, m):
+            if not (isinstance(A[i][j], float) and A[i][j] == 0.0):
+                rest = rest - A[i][j] * x[j]
+        x[i] = rest / A[i][i]
+    return x
+
+
+def _spectral_radius(K: np.ndarray) -> np.ndarray:
+    """max |eigenvalue| of each matrix in a stack (n, m, m); NaN where K is not finite."""
+    n, m = K.shape[0], K.shape[1]
+    if m == 0:
+        return np.zeros(n)
+    if m == 1:
+        return np.abs(K[:, 0, 0])
+    with np.errstate(invalid="ignore"):
+        if m == 2:
+            a, b, c, d = K[:, 0, 0], K[:, 0, 1], K[:, 1, 0], K[:, 1, 1]
+            half_trace = 0.5 * (a + d)
+            half_gap = 0.5 * (a - d)
+            disc = half_gap * half_gap + b * c
+            # Real pair: |tr/2| + sqrt(disc); complex pair: |lambda|^2 = det = (tr/2)^2 - disc.
+            real = np.abs(half_trace) + np.sqrt(np.maximum(disc, 0.0))
+            complex_ = np.sqrt(np.maximum(half_trace * half_trace - disc, 0.0))
+            # NaN or infinite entries give NaN or infinity here (never an exception).
+            return np.where(disc >= 0, real, complex_)
+    out = np.full(n, np.nan)
+    ok = np.isfinite(K).all(axis=(1, 2))
+    if ok.any():
+        out[ok] = np.max(np.abs(np.linalg.eigvals(K[ok])), axis=1)
+    return out
 
 
 class CompartmentalModel:
@@ -160,6 +216,42 @@ class CompartmentalModel:
         self.history_days = history_days
         self._series_by_name = {s.name: s for s in self.series}
         self._infected = self._infected_compartments()
+        self._plan_dynamics()
+
+    def _plan_dynamics(self) -> None:
+        """Bookkeeping for the sub-step loop, worked out once per model.
+
+        Rates whose expression reads nothing that changes within a day (no
+        compartment, ``foi``, ``t`` or time-dependent ``imported``) are
+        evaluated once per day instead of once per sub-step, and only the
+        compartments that some rate expression reads are converted to float.
+        Values are the same as evaluating everything every sub-step.
+        """
+        imported_dynamic = self._importation is not None and "t" in self._importation.names
+        dynamic = set(self.compartments) | {"t", "foi"} | ({"imported"} if imported_dynamic else set())
+        self._rate_is_dynamic = [bool(expr.names & dynamic) for expr in self._flow_rates]
+        used: set[str] = set()
+        for expr in self._flow_rates:
+            used |= expr.names
+        self._imported_dynamic = imported_dynamic
+        self._env_compartments = [(c, name) for c, name in enumerate(self.compartments) if name in used]
+        self._rate_reads = frozenset(used)
+        self._full_cache: dict[int, dict[str, np.ndarray]] = {}
+        self._needs_foi = "foi" in used
+        nonzero = np.flatnonzero(self._infectious_w)
+        # With a single infectious compartment of weight 1, x @ w is that column exactly.
+        self._single_infectious = (
+            int(nonzero[0]) if nonzero.size == 1 and self._infectious_w[nonzero[0]] == 1.0 else None
+        )
+        self._contact_t = np.ascontiguousarray(self.contact.T)
+        self._total_population = self.population.sum()
+        self._source_is_dynamic = [any(self._rate_is_dynamic[f] for f in flows) for _, flows in self._outflows]
+        self._infection_flows = [i for i, f in enumerate(self.spec.flows) if f.infection]
+        # Groups of each series when its mask is 0/1 (always, as compiled); None otherwise.
+        self._mask_groups: dict[str, np.ndarray | None] = {}
+        for s in self.series:
+            groups = np.flatnonzero(s.group_mask)
+            self._mask_groups[s.name] = groups if np.all(s.group_mask[groups] == 1.0) else None
 
     def _resolve(self, ref: float | str | None, where: str) -> int | None:
         if isinstance(ref, str):
@@ -231,16 +323,93 @@ class CompartmentalModel:
         x = counts.astype(float)
         for c, name in enumerate(self.compartments):
             env[name] = x[:, :, c]
-        if self._infectious_w.any():
-            weighted = x @ self._infectious_w  # (n, G)
-            env["foi"] = (weighted / self.population) @ self.contact.T
-        else:
-            env["foi"] = 0.0
+        env["foi"] = self._foi(counts, x)
         if self._importation is not None:
-            env["imported"] = np.asarray(self._importation(env), dtype=float) / self.population.sum()
+            env["imported"] = np.asarray(self._importation(env), dtype=float) / self._total_population
         else:
             env["imported"] = 0.0
         return env
+
+    def _foi(self, counts: np.ndarray, x: np.ndarray | None = None) -> np.ndarray | float:
+        """Force of infection (n, G): contact-weighted infectious fraction per group."""
+        n, g, c = counts.shape
+        if self._single_infectious is not None:
+            weighted = counts[:, :, self._single_infectious].astype(float)
+        elif self._infectious_w.any():
+            # A 2-D matrix-vector product: the same BLAS call (and bits) as the
+            # stacked (n, G, C) @ (C,) product, without its per-row overhead.
+            flat = (x if x is not None else counts.astype(float)).reshape(n * g, c)
+            weighted = (flat @ self._infectious_w).reshape(n, g)
+        else:
+            return 0.0
+        # Dividing by a full (n, G) copy of the populations gives the same values
+        # as broadcasting the (G,) vector, with a contiguous inner loop.
+        weighted /= self._full_constants(n)["N"]
+        return weighted @ self._contact_t
+
+    def _full_constants(self, n: int) -> dict[str, np.ndarray]:
+        """Group values and populations as read-only (n, G) arrays (cached per n)."""
+        cache = self._full_cache
+        found = cache.get(n)
+        if found is None:
+            shape = (n, self.n_groups)
+            found = {}
+            for name, value in self._group_values.items():
+                found[name] = np.ascontiguousarray(np.broadcast_to(value, shape))
+            found["N"] = np.ascontiguousarray(np.broadcast_to(self.population.astype(float), shape))
+            found["N_int"] = np.ascontiguousarray(np.broadcast_to(self.population, shape))
+            for arr in found.values():
+                arr.flags.writeable = False
+            if len(cache) >= 8:
+                cache.pop(next(iter(cache)))
+            cache[n] = found
+        return found
+
+    def _day_env(self, scalars: dict, t: float, n: int) -> dict:
+        """The part of the rate environment that is fixed for a day.
+
+        Every per-particle or per-group quantity a rate reads is laid out as a
+        contiguous (n, G) array, so that rate arithmetic runs over whole arrays
+        instead of broadcasting (n, 1) columns against (G,) rows: the same
+        elementwise operations on the same values, hence the same results.
+        """
+        shape = (n, self.n_groups)
+        full = self._full_constants(n)
+        env: dict = {}
+        for name, value in scalars.items():
+            if name in self._rate_reads and name != "t":
+                env[name] = np.ascontiguousarray(np.broadcast_to(value, shape))
+        env["t"] = float(t)
+        for name in self._group_values:
+            env[name] = full[name]
+        env["N"] = full["N_int"]
+        if self._importation is None:
+            env["imported"] = 0.0
+        elif not self._imported_dynamic:
+            imported = np.asarray(self._importation(scalars), dtype=float) / self._total_population
+            env["imported"] = np.ascontiguousarray(np.broadcast_to(imported, shape))
+        return env
+
+    def _substep_env(self, day_env: dict, scalars: dict, counts: np.ndarray, t: float) -> dict:
+        """The rate environment at time t: what any rate expression may read."""
+        env = dict(day_env)
+        env["t"] = float(t)
+        for c, name in self._env_compartments:
+            env[name] = counts[:, :, c].astype(float)
+        if self._needs_foi:
+            env["foi"] = self._foi(counts)
+        if self._imported_dynamic:
+            at_t = dict(scalars, t=float(t))
+            imported = np.asarray(self._importation(at_t), dtype=float) / self._total_population  # type: ignore[misc]
+            env["imported"] = np.ascontiguousarray(np.broadcast_to(imported, (counts.shape[0], self.n_groups)))
+        return env
+
+    def _rate(self, f: int, env: dict, n: int) -> np.ndarray:
+        r = np.asarray(self._flow_rates[f](env), dtype=float)
+        if r.shape != (n, self.n_groups):
+            r = np.broadcast_to(r, (n, self.n_groups))
+        # Negative or undefined rates (e.g. from sin or 0/0) mean "no flow".
+        return np.where(r > 0, r, 0.0)
 
     def _rates(self, env: dict, n: int) -> list[np.ndarray]:
         shape = (n, self.n_groups)
@@ -259,47 +428,88 @@ class CompartmentalModel:
         n = counts.shape[0]
         slots = self._observed_flows
         dt = self.dt
+        n_flows = len(self._flow_rates)
+        track = bool(history.shape[1])
+        if track:
+            # The day's incidence is summed in a contiguous buffer and written
+            # to history[:, 0] once the day is done (nothing reads it mid-day).
+            incidence = np.empty((n, len(slots), self.n_groups), dtype=history.dtype)
         for day in range(t0, t1):
             self._drift(particles.params, rng)
             scalars = self._scalars(particles.params, day)
-            if history.shape[1]:
-                history[:, 1:] = history[:, :-1]
-                history[:, 0] = 0
+            day_env = self._day_env(scalars, day, n)
+            if track:
+                incidence.fill(0)
+            # Rates, leave probabilities and shares that are fixed for the day.
+            rates: list = [None] * n_flows
+            for f, dynamic in enumerate(self._rate_is_dynamic):
+                if not dynamic:
+                    rates[f] = self._rate(f, day_env, n)
+            fixed = [
+                None if dynamic else self._probabilities(rates, flows)
+                for (_, flows), dynamic in zip(self._outflows, self._source_is_dynamic)
+            ]
+            moves: list = [None] * n_flows
             for sub in range(self.spec.substeps_per_day):
                 t = day + sub * dt
-                rates = self._rates(self._rate_env(scalars, counts, t), n)
-                moves = self._euler_multinomial(counts, rates, rng)
-                for c_from, c_to, flow, moved in moves:
-                    counts[:, :, c_from] -= moved
-                    counts[:, :, c_to] += moved
-                if history.shape[1]:
+                env = self._substep_env(day_env, scalars, counts, t)
+                for f, dynamic in enumerate(self._rate_is_dynamic):
+                    if dynamic:
+                        rates[f] = self._rate(f, env, n)
+                # Every move is drawn from the counts at the start of the sub-step.
+                for (c, flows), probs in zip(self._outflows, fixed):
+                    p_leave, shares = probs if probs is not None else self._probabilities(rates, flows)
+                    self._draw(counts[:, :, c], flows, p_leave, shares, rng, moves)
+                for f, (c_from, c_to) in enumerate(self._flow_ends):
+                    counts[:, :, c_from] -= moves[f]
+                    counts[:, :, c_to] += moves[f]
+                if track:
                     for k, f in enumerate(slots):
-                        history[:, 0, k] += moves[f][3]
+                        incidence[:, k] += moves[f]
+            if track:
+                history[:, 1:] = history[:, :-1]
+                history[:, 0] = incidence
+
+    def _probabilities(self, rates: list, flows: list[int]) -> tuple[np.ndarray, list[np.ndarray]]:
+        """Leave probability 1 - exp(-sum(rates) dt) and the sequential split shares."""
+        total = rates[flows[0]]
+        for f in flows[1:]:
+            total = total + rates[f]  # same order and bits as np.sum(list, axis=0)
+        p_leave = total * self.dt
+        np.negative(p_leave, out=p_leave)
+        np.expm1(p_leave, out=p_leave)
+        np.negative(p_leave, out=p_leave)
+        shares = []
+        rate_left = total
+        for f in flows[:-1]:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                share = np.where(rate_left > 0, rates[f] / rate_left, 0.0)
+            shares.append(np.clip(share, 0.0, 1.0))
+            rate_left = rate_left - rates[f]
+        return p_leave, shares
+
+    @staticmethod
+    def _draw(occupants, flows, p_leave, shares, rng, moves) -> None:
+        """Sequential binomials: who leaves, then how they split among the flows."""
+        remaining = rng.binomial(occupants, p_leave)
+        for f, share in zip(flows[:-1], shares):
+            moved = rng.binomial(remaining, share)
+            moves[f] = moved
+            remaining = remaining - moved
+        moves[flows[-1]] = remaining
 
     def _euler_multinomial(self, counts, rates, rng):
         """One sub-step: (source, target, flow, moved) for every flow, in flow order."""
-        dt = self.dt
-        moves: list = [None] * len(rates)
+        moved: list = [None] * len(rates)
         for c, flows in self._outflows:
-            occupants = counts[:, :, c]
-            total = rates[flows[0]] if len(flows) == 1 else np.sum([rates[f] for f in flows], axis=0)
-            leave = rng.binomial(occupants, -np.expm1(-total * dt))
-            remaining, rate_left = leave, total
-            for f in flows[:-1]:
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    share = np.where(rate_left > 0, rates[f] / rate_left, 0.0)
-                moved = rng.binomial(remaining, np.clip(share, 0.0, 1.0))
-                moves[f] = (c, self._flow_ends[f][1], f, moved)
-                remaining = remaining - moved
-                rate_left = rate_left - rates[f]
-            last = flows[-1]
-            moves[last] = (c, self._flow_ends[last][1], last, remaining)
-        return moves
+            p_leave, shares = self._probabilities(rates, flows)
+            self._draw(counts[:, :, c], flows, p_leave, shares, rng, moved)
+        return [(s, d, f, moved[f]) for f, (s, d) in enumerate(self._flow_ends)]
 
     def _drift(self, params: np.ndarray, rng: np.random.Generator) -> None:
         for j in self._drifting:
             transform, bounds = self._transforms[j]
-            y = to_unconstrained(params[:, j], transform, bounds)
+            y = to_unconstrained(np.ascontiguousarray(params[:, j]), transform, bounds)
             y = y + self._volatility[j] * rng.standard_normal(params.shape[0])
             params[:, j] = from_unconstrained(y, transform, bounds)
 
@@ -329,8 +539,25 @@ class CompartmentalModel:
         rho = self._column(particles.params, s.reporting_param, s.reporting)
         if s.kind == "prevalence":
             return rho * (particles.states[:, :, s.slot] @ s.group_mask)
-        daily = particles.history[:, : s.weights.size, s.slot, :] @ s.group_mask  # (n, L)
-        return rho * (daily @ s.weights)
+        return rho * (self._daily(particles, s) @ s.weights)
+
+    def _daily(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
+        """Daily counts of the series' flow over its groups, (n, L) float, newest first.
+
+        Equal to ``history[:, :L, slot, :] @ group_mask`` (the mask is 0/1 and the
+        counts are whole numbers, so the sum is exact in any order), without the
+        per-row overhead of a stacked matrix product.
+        """
+        block = particles.history[:, : s.weights.size, s.slot, :]
+        groups = self._mask_groups[s.name]
+        if groups is None or block.dtype.kind not in "iu":
+            return block @ s.group_mask
+        if groups.size == 0:
+            return np.zeros(block.shape[:2])
+        total = block[:, :, groups[0]]
+        for g in groups[1:]:
+            total = total + block[:, :, g]
+        return np.array(total, dtype=float, order="C")
 
     def _trials(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
         if s.kind == "prevalence":
@@ -342,6 +569,7 @@ class CompartmentalModel:
     def log_likelihood(self, particles: ParticleSet, observation: Observation) -> np.ndarray:
         self.check_observation(observation)
         total = np.zeros(particles.size)
+        size_terms: dict = {}  # negative-binomial size terms, shared by series with one size
         for name, y in observation.present().items():
             s = self._series_by_name[name]
             y = float(y)
@@ -353,8 +581,11 @@ class CompartmentalModel:
             if s.noise == "poisson":
                 total += poisson_loglik(y, mu)
             else:
-                k = self._column(particles.params, s.dispersion_param, s.dispersion)
-                total += negbin_loglik(y, mu, k)
+                key = ("param", s.dispersion_param) if s.dispersion_param is not None else ("value", s.dispersion)
+                if key not in size_terms:
+                    k = self._column(particles.params, s.dispersion_param, s.dispersion)
+                    size_terms[key] = negbin_size_terms(k)
+                total += _negbin_loglik(y, mu, size_terms[key])
         return total
 
     def sample_observation(self, particles: ParticleSet, rng: np.random.Generator) -> dict[str, np.ndarray]:
@@ -380,49 +611,64 @@ class CompartmentalModel:
         (van den Driessche & Watmough 2002), at the particles' current susceptibles.
 
         Assumes each infection flow's per-capita rate is linear in ``foi``.
+
+        K = F V^-1 over the infected classes of every group. F[(g, d), (h, c)] =
+        a[g, d] C[g, h] w_c / N_h, where a[g, d] sums slope x susceptibles over
+        the infection flows entering class d, and V is block-diagonal by group.
+        So K[(g, d), (h, e)] = a[g, d] C[g, h] / N_h u_h[e] with u_h = V_h^-T w
+        (the expected weighted infectious time of someone entering class e of
+        group h). Rows of K for classes no infection enters are zero, so the
+        spectral radius of K is that of its block on the entry classes: G x G
+        when infections enter one class. That block's spectral radius is taken
+        in closed form when it is 1 x 1 or 2 x 2 and with ``numpy.linalg.eigvals``
+        otherwise: the same quantity as the dense definition, without the
+        batched inverse and eigen-decomposition of the full matrix.
         """
         infected = self._infected
         n = particles.size
-        infection = [i for i, f in enumerate(self.spec.flows) if f.infection]
+        infection = self._infection_flows
         if not infected or not infection:
             return np.full(n, np.nan)
         G, m_c = self.n_groups, len(infected)
-        m = G * m_c
+        pos = {c: k for k, c in enumerate(infected)}
+        entering = [f for f in infection if self._flow_ends[f][1] in pos]
+        if not entering:
+            return np.zeros(n)  # F = 0
         counts = particles.states
         scalars = self._scalars(particles.params, t)
-        env = self._rate_env(scalars, counts, t)
-        rates = self._rates(env, n)
+        env = self._substep_env(self._day_env(scalars, t, n), scalars, counts, t)
         env0 = dict(env, foi=np.zeros((n, G)), imported=0.0)
         env1 = dict(env, foi=np.ones((n, G)), imported=0.0)
-        pos = {c: k for k, c in enumerate(infected)}
-        F = np.zeros((n, m, m))
-        for f in infection:
-            src, dst = self._flow_ends[f]
-            if dst not in pos:
-                continue
-            slope = np.broadcast_to(
-                np.asarray(self._flow_rates[f](env1), float) - np.asarray(self._flow_rates[f](env0), float), (n, G)
-            )
-            susceptible = counts[:, :, src].astype(float)
-            for g in range(G):
-                for j in range(G):
-                    for c in infected:
-                        w = self._infectious_w[c]
-                        if w:
-                            F[:, g * m_c + pos[dst], j * m_c + pos[c]] += (
-                                slope[:, g] * susceptible[:, g] * self.contact[g, j] * w / self.population[j]
-                            )
-        V = np.zeros((n, m, m))
-        for f, (src, dst) in enumerate(self._flow_ends):
-            if src not in pos or f in infection:
-                continue
-            for g in range(G):
-                V[:, g * m_c + pos[src], g * m_c + pos[src]] += rates[f][:, g]
+        entries = sorted({pos[self._flow_ends[f][1]] for f in entering})
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            # a[i]: (n, G) sum of slope x susceptibles over infection flows entering class entries[i].
+            a = [np.zeros((n, G)) for _ in entries]
+            for f in entering:
+                src, dst = self._flow_ends[f]
+                slope = np.asarray(self._flow_rates[f](env1), float) - np.asarray(self._flow_rates[f](env0), float)
+                a[entries.index(pos[dst])] += slope * counts[:, :, src]
+            # V of every group as an m_c x m_c table of (n, G) arrays (0.0 where no flow);
+            # 1e-12 on the diagonal keeps it invertible when a class has no exit.
+            V: list[list] = [[0.0] * m_c for _ in range(m_c)]
+            for f, (src, dst) in enumerate(self._flow_ends):
+                if src not in pos or f in infection:
+                    continue
+                rate = self._rate(f, env, n)
+                V[pos[src]][pos[src]] = V[pos[src]][pos[src]] + rate
                 if dst in pos:
-                    V[:, g * m_c + pos[dst], g * m_c + pos[src]] -= rates[f][:, g]
-        V += np.eye(m) * 1e-12  # keeps V invertible when an infected class has no exit
-        K = F @ np.linalg.inv(V)
-        return np.max(np.abs(np.linalg.eigvals(K)), axis=1)
+                    V[pos[dst]][pos[src]] = V[pos[dst]][pos[src]] - rate
+            for i in range(m_c):
+                V[i][i] = V[i][i] + 1e-12
+            transposed = [[V[j][i] for j in range(m_c)] for i in range(m_c)]
+            u = _solve_table(transposed, [float(self._infectious_w[c]) for c in infected])
+            u = [np.broadcast_to(np.asarray(x, dtype=float), (n, G)) for x in u]
+            coupling = self.contact / self.population[None, :]  # C[g, h] / N_h
+            rows = [(g, i) for g in range(G) for i in range(len(entries))]
+            K = np.empty((n, len(rows), len(rows)))
+            for r, (g, i) in enumerate(rows):
+                for s, (h, j) in enumerate(rows):
+                    K[:, r, s] = a[i][:, g] * coupling[g, h] * u[entries[j]][:, h]
+            return _spectral_radius(K)
 
     def describe(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
         out: dict[str, np.ndarray] = {}

@@ -51,23 +51,39 @@ def poisson_loglik(y: float, mu: np.ndarray) -> np.ndarray:
 
 def negbin_loglik(y: float, mu: np.ndarray, size: np.ndarray | float) -> np.ndarray:
     """log P(Y = y) for a negative binomial with mean mu and size k (variance mu + mu^2/k)."""
-    mu = np.asarray(mu, dtype=float)
+    return _negbin_loglik(y, mu, negbin_size_terms(size))
+
+
+def negbin_size_terms(size: np.ndarray | float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(k, log k, log Gamma(k)): the parts of the negative-binomial log-pmf that depend
+    on the size only, so several series sharing one size compute them once."""
     k = np.asarray(size, dtype=float)
+    if k.ndim and not k.flags.c_contiguous:
+        k = np.ascontiguousarray(k)  # e.g. a parameter column: same values, faster loops
     with np.errstate(divide="ignore", invalid="ignore"):
-        log_p_zero = k * (np.log(k) - np.log(k + mu))
+        return k, np.log(k), gammaln(k)
+
+
+def _negbin_loglik(y: float, mu: np.ndarray, terms: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
+    k, log_k, gammaln_k = terms
+    mu = np.asarray(mu, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_k_mu = np.log(k + mu)
+        log_p_zero = k * (log_k - log_k_mu)
         if y == 0:
             out = log_p_zero
         else:
             out = (
-                gammaln(y + k) - gammaln(k) - math.lgamma(y + 1.0)
-                + log_p_zero + y * (np.log(mu) - np.log(k + mu))
+                gammaln(y + k) - gammaln_k - math.lgamma(y + 1.0)
+                + log_p_zero + y * (np.log(mu) - log_k_mu)
             )
     return np.where(np.isnan(out), -np.inf, out)
 
 
 def binomial_loglik(y: float, trials: np.ndarray, p: np.ndarray | float) -> np.ndarray:
     """log P(Y = y) for Y ~ Binomial(trials, p); -inf where y > trials."""
-    return np.nan_to_num(stats.binom.logpmf(y, trials, p), nan=-np.inf)
+    # neginf must stay -inf: nan_to_num would otherwise turn it into -1.8e308.
+    return np.nan_to_num(stats.binom.logpmf(y, trials, p), nan=-np.inf, neginf=-np.inf)
 
 
 def delay_kernel(dist: str, mean: float, sd: float, max_days: int) -> np.ndarray:

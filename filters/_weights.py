@@ -12,7 +12,8 @@ def log_sum_exp(log_w: np.ndarray) -> float:
     m = np.max(log_w)
     if not np.isfinite(m):
         return float(m) if m > 0 else float("-inf")
-    return float(m + np.log(np.sum(np.exp(log_w - m))))
+    with np.errstate(over="ignore"):  # a spread beyond the float range gives -inf, i.e. weight 0
+        return float(m + np.log(np.sum(np.exp(log_w - m))))
 
 
 def normalised_weights(log_w: np.ndarray) -> np.ndarray:
@@ -20,7 +21,8 @@ def normalised_weights(log_w: np.ndarray) -> np.ndarray:
     total = log_sum_exp(log_w)
     if not np.isfinite(total):
         raise ValueError(f"cannot normalise weights: log-sum-exp is {total}")
-    w = np.exp(log_w - total)
+    with np.errstate(over="ignore"):  # as in log_sum_exp
+        w = np.exp(log_w - total)
     return w / w.sum()
 
 

@@ -102,6 +102,7 @@ class KafkaSettings(_Section):
     alerts_topic: str = "casecloud.alerts"
     dead_letter_topic: str = "casecloud.dead-letters"
     client_id: str = "casecloud"
+    session_timeout_ms: int = Field(default=10_000, ge=6_000, le=300_000)
     security_protocol: Literal["PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL"] = "PLAINTEXT"
     sasl_mechanism: Literal["PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512"] | None = None
     sasl_username: str | None = None
@@ -159,16 +160,19 @@ def load_deployment_config(
         raise SpecError(f"{path}: cannot read config: {exc.strerror}") from None
     except tomllib.TOMLDecodeError as exc:
         raise SpecError(f"{path}: not valid TOML: {exc}") from None
-    for var, (section, key) in ENV_OVERRIDES.items():
-        if var in env:
-            data.setdefault(section, {})[key] = env[var]
     base = path.parent
     for section, key in (("service", "checkpoint_dir"), ("file", "input"), ("file", "output_dir")):
-        value = data.get(section, {}).get(key)
+        table = data.get(section)
+        value = table.get(key) if isinstance(table, dict) else None  # a non-table is reported by validation
         if isinstance(value, str) and value and not Path(value).is_absolute():
             data[section][key] = str(base / value)
     for stream in data.get("streams", []) if isinstance(data.get("streams"), list) else []:
         model = stream.get("model") if isinstance(stream, dict) else None
         if isinstance(model, str) and model.endswith(".toml") and not Path(model).is_absolute():
             stream["model"] = str(base / model)
+    # After resolving: a relative path given in the environment means the
+    # working directory, as usual for environment variables, not the file's.
+    for var, (section, key) in ENV_OVERRIDES.items():
+        if var in env and isinstance(data.setdefault(section, {}), dict):
+            data[section][key] = env[var]
     return validate_document(DeploymentConfig, data, str(path), text)

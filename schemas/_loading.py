@@ -20,7 +20,8 @@ def _line_of(text: str, loc: tuple[Any, ...]) -> int | None:
     """Best-effort line number of the last named key of ``loc`` in TOML text."""
     keys = [k for k in loc if isinstance(k, str) and not k.startswith(("function-", "tagged-"))]
     for key in reversed(keys):
-        pattern = re.compile(rf'^\s*(\[+\s*)?([\w."-]*\.)?"?{re.escape(key)}"?\s*(=|\]|\.)', re.M)
+        # [ \t]* rather than \s*: \s would match newlines and report the blank line above.
+        pattern = re.compile(rf'^[ \t]*(\[+[ \t]*)?([\w."-]*\.)?"?{re.escape(key)}"?[ \t]*(=|\]|\.)', re.M)
         match = pattern.search(text)
         if match:
             return text.count("\n", 0, match.start()) + 1

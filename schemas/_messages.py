@@ -30,7 +30,8 @@ MAX_COUNT = 1_000_000_000
 StreamId = Annotated[str, Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9._:-]{0,127}$")]
 SeriesName = Annotated[str, Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")]
 Period = Annotated[str, Field(pattern=r"^(\d{4}-\d{2}-\d{2}|\d{4}-W\d{2})$")]
-_WEEK = re.compile(r"^(\d{4})-W(\d{2})$")
+# [0-9], not \d: \d also matches non-ASCII digits (e.g. "\u0662\u0660\u0662\u0666-W05"), which int() would accept.
+_WEEK = re.compile(r"^([0-9]{4})-W([0-9]{2})$")
 
 
 def parse_period(period: str) -> dt.date:

@@ -79,6 +79,8 @@ class Service:
                         break
                     continue
                 async with lock:
+                    if not self.transport.is_current(record):
+                        continue
                     outcome = await self.processor.handle(record, self._publish)
                 await self.transport.commit(record)
                 self.counts[outcome.status] += 1

@@ -728,6 +728,8 @@ class LocalCheckpointStore(CheckpointStore):
         for step, path in files:
             try:
                 checkpoint = self._read(stream_id, step, path)
+            except FileNotFoundError:
+                continue  # pruned by a concurrent write since the listing
             except CheckpointCorrupt as exc:
                 skipped.append((path, exc.reason))
                 continue
@@ -766,7 +768,14 @@ class LocalCheckpointStore(CheckpointStore):
         return checkpoint
 
     def list(self, stream_id: str) -> builtins.list[CheckpointInfo]:
-        return [CheckpointInfo(stream_id, step, path, path.stat().st_size) for step, path in self._files(stream_id)]
+        infos: builtins.list[CheckpointInfo] = []
+        for step, path in self._files(stream_id):
+            try:
+                size = path.stat().st_size
+            except FileNotFoundError:
+                continue  # pruned by a concurrent write since the listing
+            infos.append(CheckpointInfo(stream_id, step, path, size))
+        return infos
 
     def streams(self) -> builtins.list[str]:
         if not self.root.is_dir():
@@ -786,9 +795,11 @@ class LocalCheckpointStore(CheckpointStore):
     def verify(self, stream_id: str) -> builtins.list[VerifyReport]:
         reports: builtins.list[VerifyReport] = []
         for step, path in self._files(stream_id):
-            size = path.stat().st_size
             try:
+                size = path.stat().st_size
                 self._read(stream_id, step, path)
+            except FileNotFoundError:
+                continue  # pruned by a concurrent write since the listing
             except CheckpointError as exc:
                 reason = exc.reason if isinstance(exc, CheckpointCorrupt) else str(exc)
                 reports.append(VerifyReport(path, step, size, False, reason))

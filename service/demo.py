@@ -81,11 +81,16 @@ def _feed_lines(observations, days: int) -> list[bytes]:
 def _with_mistakes(lines: list[bytes]) -> list[bytes]:
     """A real feed is not clean: one truncated line, one negative count, one re-sent day."""
     out = list(lines)
-    out.insert(20, lines[19][: len(lines[19]) // 2])
-    bad = orjson.loads(lines[30])
-    bad["counts"]["ed_child"] = -3
-    out.insert(31, orjson.dumps(bad))
-    out.insert(46, out[45])
+    # Short feeds (``--days`` below 46) get the mistakes that fit.
+    if len(lines) >= 20:
+        out.insert(20, lines[19][: len(lines[19]) // 2])
+    if len(lines) >= 31:
+        bad = orjson.loads(lines[30])
+        bad["counts"]["ed_child"] = -3
+        out.insert(31, orjson.dumps(bad))
+    resent = min(46, len(out))
+    if resent:
+        out.insert(resent, out[resent - 1])
     return out
 
 

@@ -88,9 +88,11 @@ def _classify(exc: ValidationError) -> tuple[str, str]:
         given = e.get("input")
         shown = repr(given) if not isinstance(given, (dict, list)) else type(given).__name__
         parts.append(f"{loc or '(message)'}: {e['msg']} (given {shown})")
-        if e["loc"][:1] == ("counts",) and len(e["loc"]) > 1:
+        if e["loc"][:1] == ("counts",) and e["loc"][-1:] == ("[key]",) and reason == "schema":
+            reason = "unknown_series"  # not even a valid series name, so no stream observes it
+        elif e["loc"][:1] == ("counts",) and len(e["loc"]) > 1:
             reason = "bad_count"
-        elif e["loc"][:1] == ("period",) and reason == "schema":
+        elif e["loc"][:1] == ("period",) and e["type"] != "missing" and reason == "schema":  # absent: schema
             reason = "bad_period"
     return reason, "; ".join(parts)
 

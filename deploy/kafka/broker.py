@@ -70,6 +70,9 @@ DEFAULT_JAVA_OPTS = (
     "-Xmx512m",
     "-XX:+UseG1GC",
     "-XX:MaxGCPauseMillis=20",
+    # C1 only: the JVM is up in about 60% of the time on a busy 2-core machine;
+    # peak throughput matters little for tests (override: -XX:TieredStopAtLevel=4)
+    "-XX:TieredStopAtLevel=1",
     "-XX:+ExitOnOutOfMemoryError",
     "-XX:-UsePerfData",
     "-Djava.awt.headless=true",
@@ -315,7 +318,8 @@ def metadata(address: str, topics: Optional[Sequence[str]] = None, timeout: floa
         return index, (err, leader)
 
     for _ in range(max(r.int32(), 0)):
-        err, name, _internal = r.int16(), r.string(), r.int8()
+        err, name = r.int16(), r.string()
+        r.int8()  # is_internal
         parts = dict(r.array(partition))
         out_topics[name] = {
             "error": err,
@@ -550,7 +554,7 @@ class KafkaBroker:
     def server_config(self) -> Dict[str, str]:
         """The properties written to ``server.properties`` (after ports are picked)."""
         p = self.ports
-        client = [lst for lst in self._listeners]
+        client = self._listeners
         props = {
             "process.roles": "broker,controller",
             "node.id": str(NODE_ID),
@@ -612,16 +616,20 @@ class KafkaBroker:
 
     def _java_cmd(self, main_class: str, *args: str, tool: bool = False) -> List[str]:
         """``java ... MAIN ARGS``: the broker's JVM options, or for a short-lived
-        tool (``tool=True``) a small heap, C1 only and WARN logs on stderr."""
+        tool (``tool=True``) a small heap and WARN logs on stderr."""
         if tool:
             self._write_tools_log4j()
             opts = [o for o in DEFAULT_JAVA_OPTS if not o.startswith("-Xm")]
-            opts += ["-Xms32m", "-Xmx256m", "-XX:TieredStopAtLevel=1"]
+            opts += ["-Xms32m", "-Xmx256m"]
             log4j = self.work_dir / "tools-log4j.properties"
         else:
             opts = list(DEFAULT_JAVA_OPTS) + self.java_opts
             log4j = self.work_dir / "log4j.properties"
         opts += os.environ.get(JAVA_OPTS_ENV, "").split()
+        if any(o.startswith("-XX:+Use") and o.endswith("GC") and o != "-XX:+UseG1GC" for o in opts):
+            # another collector was asked for: drop the default G1 settings (the JVM
+            # refuses two collectors); other options simply repeat, the last one wins
+            opts = [o for o in opts if o not in ("-XX:+UseG1GC", "-XX:MaxGCPauseMillis=20")]
         return [
             _java_executable(), *opts, f"-Dlog4j.configuration=file:{log4j}",
             "-cp", self.classpath, main_class, *args,
@@ -741,7 +749,7 @@ class KafkaBroker:
             try:
                 self._start_once(timeout)
                 return self
-            except BrokerStartError as exc:
+            except BrokerStartError:
                 log = self._attempt_log()
                 bind_clash = "Address already in use" in log or "BindException" in log
                 if attempt < attempts and bind_clash:
@@ -765,10 +773,14 @@ class KafkaBroker:
         self._log_offset = self._log_file.tell()
         self._log_file.write(f"\n=== start {time.strftime('%Y-%m-%d %H:%M:%S')}: {' '.join(self.command)}\n".encode())
         self._log_file.flush()
-        self.proc = subprocess.Popen(
-            launch, stdout=self._log_file, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-            cwd=self.work_dir, start_new_session=True,
-        )
+        try:
+            self.proc = subprocess.Popen(
+                launch, stdout=self._log_file, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                cwd=self.work_dir, start_new_session=True,
+            )
+        except OSError as exc:
+            self._cleanup_after_exit()
+            raise BrokerStartError(f"cannot launch the broker: {exc}\ncommand: {' '.join(launch)}") from exc
         with _RUNNING_LOCK:
             _RUNNING.add(self)
         deadline = t0 + timeout
@@ -779,23 +791,27 @@ class KafkaBroker:
             if code is not None:
                 self._cleanup_after_exit()
                 raise self._start_error(f"the broker exited with exit code {code} before it was ready")
+            versions = md = None
             try:
                 versions = api_versions(addr, timeout=2.0)
+                md = metadata(addr, [], timeout=2.0)
+            except (OSError, ConnectionError, struct.error) as exc:
+                last_error = f"{type(exc).__name__}: {exc}"
+            except BrokerError as exc:
+                last_error = str(exc)
+            if versions is not None:
                 for key, ver in ((API_METADATA, 1), (API_CREATE_TOPICS, 2)):
                     lo, hi = versions.get(key, (None, None))
                     if lo is None or not lo <= ver <= hi:
                         self.stop(grace=5.0)
                         raise self._start_error(
-                            f"the broker does not support API {key} version {ver} (it allows {lo}..{hi})")
-                md = metadata(addr, [], timeout=2.0)
+                            f"the broker does not support API {key} version {ver} (it allows {lo}..{hi}); "
+                            f"this launcher needs Kafka 3.x, pom.xml asks for {KAFKA_VERSION}")
+            if md is not None:
                 if NODE_ID in md["brokers"] and md["controller"] >= 0:
                     self.start_seconds = time.monotonic() - t0
                     return
                 last_error = f"metadata not ready yet: {md}"
-            except (OSError, ConnectionError, struct.error) as exc:
-                last_error = f"{type(exc).__name__}: {exc}"
-            except BrokerError as exc:
-                last_error = str(exc)
             if time.monotonic() > deadline:
                 self.stop(grace=5.0)
                 raise self._start_error(
@@ -815,7 +831,7 @@ class KafkaBroker:
         code = self.proc.returncode if self.proc is not None else None
         errors = [
             line[:600] for line in self._attempt_log().splitlines()
-            if any(mark in line for mark in (" ERROR ", " FATAL ", "Exception", "Error:"))
+            if any(mark in line for mark in (" ERROR ", " FATAL ", "Exception", "Error:", "Error occurred"))
         ][:12]
         return BrokerStartError(
             f"Kafka broker in {self.work_dir} failed to start: {what}\n"

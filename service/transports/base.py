@@ -69,6 +69,10 @@ class Transport:
         """Mark ``record`` (and everything before it in its partition) as done."""
         raise NotImplementedError
 
+    def is_current(self, record: Record) -> bool:
+        """Whether ``record`` may still be processed (False after a rebalance moved on)."""
+        return True
+
     def lag(self) -> dict[tuple[str, int], int]:
         """Records waiting per (topic, partition), where the transport knows it."""
         return {}

@@ -60,12 +60,18 @@ class _Rebalance(ConsumerRebalanceListener):
         t = self.transport
         pairs = sorted((tp.topic, tp.partition) for tp in assigned)
         log.info("partitions assigned: %s", pairs)
-        if t.on_assign is None or not pairs:
-            return
-        seeks = await t.on_assign(pairs)
-        assert t.consumer is not None
-        for (topic, partition), offset in seeks.items():
-            t.consumer.seek(TopicPartition(topic, partition), offset)
+        # Hold the processing lock so no record is handled while stream state
+        # is reloaded, and drop records fetched under the old assignment: we
+        # seek every partition to its resume point anyway.
+        async with t.processing:
+            t._buffer.clear()
+            t.generation += 1
+            if t.on_assign is None or not pairs:
+                return
+            seeks = await t.on_assign(pairs)
+            assert t.consumer is not None
+            for (topic, partition), offset in seeks.items():
+                t.consumer.seek(TopicPartition(topic, partition), offset)
 
 
 class KafkaTransport(Transport):
@@ -77,6 +83,8 @@ class KafkaTransport(Transport):
         self.on_assign: AssignmentHook | None = None
         self.processing = asyncio.Lock()
         self._buffer: list[Record] = []
+        self.generation = 0  # bumped at every assignment
+        self._received_in = -1
         self._positions: dict[tuple[str, int], int] = {}
         self._topics = {
             "estimates": settings.estimates_topic,
@@ -115,8 +123,8 @@ class KafkaTransport(Transport):
             enable_auto_commit=False,
             auto_offset_reset="earliest",
             max_partition_fetch_bytes=max(self.max_message_bytes * 2, 1_048_576),
-            session_timeout_ms=10_000,
-            heartbeat_interval_ms=1_000,
+            session_timeout_ms=s.session_timeout_ms,
+            heartbeat_interval_ms=min(1_000, s.session_timeout_ms // 3),
             **security,
         )
         try:
@@ -165,7 +173,13 @@ class KafkaTransport(Transport):
             self._buffer = [r for r in self._buffer if (r.topic, r.partition) in assigned]
             return None
         self._positions[(record.topic, record.partition)] = record.offset + 1
+        self._received_in = self.generation
         return record
+
+    def is_current(self, record: Record) -> bool:
+        """False if a rebalance happened since ``record`` was received: it will
+        be read again from the partition's resume point (by us or its new owner)."""
+        return self._received_in == self.generation
 
     async def publish(self, records: Sequence[OutRecord]) -> None:
         assert self.producer is not None, "transport not started"

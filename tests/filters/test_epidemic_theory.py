@@ -103,6 +103,7 @@ def one_infective_runs(request):
     return {"r0": r0, "final": final, "N": n_pop, "dt": 1.0 / spec.substeps_per_day}
 
 
+@pytest.mark.slow  # shares a ~3-6 s simulation of 2 x 6000 epidemics
 def test_major_outbreak_probability_matches_whittle(one_infective_runs):
     """P(major outbreak | one initial infective) = 1 - 1/R0 (Whittle 1955)."""
     r0, final, dt = one_infective_runs["r0"], one_infective_runs["final"], one_infective_runs["dt"]
@@ -123,6 +124,7 @@ def test_major_outbreak_probability_matches_whittle(one_infective_runs):
     assert abs(p_hat - (1.0 - extinction)) <= 3.5 * se
 
 
+@pytest.mark.slow  # shares a ~3-6 s simulation of 2 x 6000 epidemics
 def test_major_outbreak_final_size_matches_kermack_mckendrick(one_infective_runs):
     """Mean attack fraction of major outbreaks -> root of z = 1 - exp(-R0 z)."""
     r0, final, n_pop, dt = (one_infective_runs[k] for k in ("r0", "final", "N", "dt"))
@@ -143,6 +145,7 @@ def test_major_outbreak_final_size_matches_kermack_mckendrick(one_infective_runs
     assert abs(mean - z_discrete) <= 4 * se + 20.0 / n_pop
 
 
+@pytest.mark.slow  # shares a ~3-6 s simulation of 2 x 6000 epidemics
 def test_major_outbreak_final_size_spread_matches_clt(one_infective_runs):
     """Spread of the final size in major outbreaks (Andersson & Britton 2000, Thm 4.2)."""
     r0, final, n_pop, dt = (one_infective_runs[k] for k in ("r0", "final", "N", "dt"))

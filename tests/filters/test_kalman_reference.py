@@ -6,10 +6,17 @@ of the Nile at Aswan, 1871-1970 (Cobb 1978; the data ship with statsmodels as
 ``statsmodels.datasets.nile``), with their maximum-likelihood variances
 sigma^2_eps = 15099 (observation) and sigma^2_eta = 1469.1 (level).
 
+The two variances are the book's published estimates (quoted from memory);
+``test_published_variances_are_the_ml_estimates`` confirms them against a
+maximum-likelihood fit in statsmodels with an exact diffuse prior, which gives
+(15103.4, 1467.5).
+
 Reference: the exact Kalman filter in statsmodels
 (``UnobservedComponents(level='local level')`` with a *known* initial state),
-cross-checked against the textbook recursions (Durbin & Koopman 2012, eqs. 2.15
-and 7.2) written out below.
+cross-checked against the textbook recursions written out below (Durbin &
+Koopman 2012, section 2.2, the local-level Kalman filter, and the
+prediction-error decomposition of the log-likelihood, section 7.2; section
+numbers from memory).
 
 Matching the two set-ups: ``LocalLevelModel.initial`` draws x_0 ~ N(m0, v0) and
 the filter's cloud starts at day 0; the first observation has ``time=1``, so
@@ -19,17 +26,24 @@ alpha_1 ~ N(a_1, P_1) for the state of the first observation, so the Kalman
 filter is initialised with a_1 = m0 and P_1 = v0 + sigma^2_eta.
 
 Tolerances are Monte Carlo ones computed in the test from R independent runs
-(different seeds), never picked by hand:
+(different seeds); only the family-wise error level (1e-3) is chosen:
 
 * log-likelihood: by the log-normal CLT for particle estimates of the
   normalising constant (Berard, Del Moral & Doucet 2014, "A lognormal central
-  limit theorem for particle approximations of normalizing constants", EJP),
+  limit theorem for particle approximations of normalizing constants",
+  Electron. J. Probab.; citation from memory),
   log Z_hat ~ N(log Z - s^2/2, s^2) with s^2 = O(1/N); the mean over R runs is
   tested against log Z - s^2/2 with a Student-t bound, and the O(1/N) scaling
   of s^2 is tested with an F bound between N=2000 and N=20000.
 * filtered means and quantiles: per time step, the mean over R runs is tested
   against the Kalman value with a Student-t bound, Bonferroni-corrected over the
   100 steps (family-wise error 1e-3).
+* the ESS-based standard error sd_t / sqrt(ESS_t) is checked for its typical
+  size only (see ``test_ess_based_standard_error_is_the_right_size``).
+
+Figures seen while writing this test (N = 20000, 10 runs): PF minus Kalman
+log-likelihood mean -0.010, sd 0.083 (Kalman llf -639.307); at N = 2000 the
+sd is 0.18.
 """
 
 from __future__ import annotations
@@ -43,7 +57,7 @@ from statsmodels.datasets import nile
 
 from filters import FilterConfig, LocalLevelModel, Observation, ParticleFilter
 
-# Durbin & Koopman (2012), ch. 2 (section 2.10): ML estimates for the Nile data.
+# Durbin & Koopman (2012), ch. 2: ML estimates for the Nile data (from memory).
 OBS_VAR = 15099.0
 LEVEL_VAR = 1469.1
 # A proper (known) prior for x_0, broad compared with the observation sd (~123),
@@ -54,7 +68,8 @@ P1 = X0_VAR + LEVEL_VAR  # prior variance of x_1, the first observed level
 
 N_BIG = 20_000
 N_SMALL = 2_000
-REPLICATES = 16
+REPLICATES = 10  # runs at N_BIG (about 0.5-1 s each)
+SMALL_REPLICATES = 40  # runs at N_SMALL (cheap; they sharpen the F test)
 FAMILY_ALPHA = 1e-3
 PROBS = (0.05, 0.5, 0.95)
 
@@ -74,7 +89,10 @@ def statsmodels_kalman(y: np.ndarray):
 
 
 def textbook_kalman(y: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
-    """Durbin & Koopman (2012) eq. 2.15 (filter) and eq. 7.2 (log-likelihood)."""
+    """Durbin & Koopman (2012) local-level Kalman filter (section 2.2) and
+    prediction-error decomposition of the log-likelihood (section 7.2):
+    v = y - a, F = P + s2_eps, K = P / F, a_t|t = a + K v, P_t|t = P (1 - K),
+    a_t+1 = a_t|t, P_t+1 = P_t|t + s2_eta, log L = -1/2 sum(log 2 pi + log F + v^2 / F)."""
     a, p = X0_MEAN, P1
     loglik, means, variances = 0.0, [], []
     for obs in y:
@@ -88,17 +106,18 @@ def textbook_kalman(y: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
     return loglik, np.array(means), np.array(variances)
 
 
-def run_particle_filter(y: np.ndarray, n: int, rng: np.random.Generator):
+def run_particle_filter(y: np.ndarray, n: int, rng: np.random.Generator, with_summary: bool = True):
     model = LocalLevelModel(state_var=LEVEL_VAR, obs_var=OBS_VAR, initial_mean=X0_MEAN, initial_var=X0_VAR)
     pf = ParticleFilter(model, FilterConfig(n_particles=n, summary_probs=PROBS), rng)
     assert pf.time == 0
     means, quants, ess, increments = [], [], [], []
     for t, value in enumerate(y, start=1):
-        result = pf.step(Observation(time=t, values={"y": float(value)}))
+        result = pf.step(Observation(time=t, values={"y": float(value)}), with_summary=with_summary)
         assert result.time == t and not result.collapsed
-        mean, q = result.summary.get("level")
-        means.append(mean)
-        quants.append([q[p] for p in PROBS])
+        if with_summary:
+            mean, q = result.summary.get("level")
+            means.append(mean)
+            quants.append([q[p] for p in PROBS])
         ess.append(result.ess)
         increments.append(result.log_evidence_increment)
     # The running total equals the sum of the per-step increments.
@@ -115,9 +134,11 @@ def reference():
 @pytest.fixture(scope="module")
 def runs(reference):
     y, _ = reference
-    seeds = np.random.SeedSequence(20120501).spawn(2 * REPLICATES)
+    seeds = np.random.SeedSequence(20120501).spawn(REPLICATES + SMALL_REPLICATES)
     big = [run_particle_filter(y, N_BIG, np.random.default_rng(s)) for s in seeds[:REPLICATES]]
-    small = [run_particle_filter(y, N_SMALL, np.random.default_rng(s))[0] for s in seeds[REPLICATES:]]
+    small = [
+        run_particle_filter(y, N_SMALL, np.random.default_rng(s), with_summary=False)[0] for s in seeds[REPLICATES:]
+    ]
     return {
         "loglik": np.array([r[0] for r in big]),
         "means": np.array([r[1] for r in big]),  # (R, T)
@@ -129,12 +150,22 @@ def runs(reference):
 
 def test_statsmodels_set_up_is_the_textbook_kalman_filter(reference):
     """Guards the reference itself: statsmodels with a known prior reproduces
-    the hand-written recursions of Durbin & Koopman (2012), eqs. 2.15 and 7.2."""
+    the hand-written recursions of Durbin & Koopman (2012)."""
     y, res = reference
     loglik, means, variances = textbook_kalman(y)
     np.testing.assert_allclose(res.llf, loglik, rtol=1e-10)
     np.testing.assert_allclose(res.filtered_state[0], means, rtol=1e-10)
     np.testing.assert_allclose(res.filtered_state_cov[0, 0], variances, rtol=1e-8)
+
+
+def test_published_variances_are_the_ml_estimates(reference):
+    """Guards the quoted numbers and the data: statsmodels' ML fit with the
+    book's exact diffuse prior lands within 1% of 15099 and 1469.1 (1% chosen:
+    optimiser tolerance on a flat likelihood surface)."""
+    y, _ = reference
+    mod = sm.tsa.UnobservedComponents(y, level="local level", use_exact_diffuse=True)
+    fit = mod.fit(disp=False, start_params=[10_000.0, 1_000.0])
+    np.testing.assert_allclose(fit.params, [OBS_VAR, LEVEL_VAR], rtol=0.01)
 
 
 @pytest.mark.slow
@@ -157,14 +188,14 @@ def test_log_likelihood_matches_kalman(reference, runs):
 @pytest.mark.slow
 def test_log_likelihood_variance_scales_as_one_over_n(reference, runs):
     """Var(log Z_hat) = O(1/N) (Berard, Del Moral & Doucet 2014): ten times the
-    particles, a tenth of the variance, within an F(R-1, R-1) band."""
+    particles, a tenth of the variance, within an F(R_small-1, R-1) band."""
     _, res = reference
     var_small = np.var(runs["loglik_small"] - res.llf, ddof=1)
     var_big = np.var(runs["loglik"] - res.llf, ddof=1)
     ratio = (var_small / var_big) / (N_BIG / N_SMALL)
-    r = REPLICATES
-    lo = stats.f.ppf(FAMILY_ALPHA / 2, r - 1, r - 1)
-    hi = stats.f.ppf(1 - FAMILY_ALPHA / 2, r - 1, r - 1)
+    dfn, dfd = runs["loglik_small"].size - 1, runs["loglik"].size - 1
+    lo = stats.f.ppf(FAMILY_ALPHA / 2, dfn, dfd)
+    hi = stats.f.ppf(1 - FAMILY_ALPHA / 2, dfn, dfd)
     assert lo <= ratio <= hi, (var_small, var_big, ratio, lo, hi)
 
 
@@ -187,24 +218,25 @@ def test_filtered_means_match_kalman_at_every_step(reference, runs):
 @pytest.mark.slow
 def test_ess_based_standard_error_is_the_right_size(reference, runs):
     """The one-step standard error sd_t / sqrt(ESS_t) (Kong, Liu & Wong 1994;
-    Kish's ESS) is the scale the service reports. The spread of the filtered
-    mean across independent runs must be of that size: not smaller than half
-    (which would mean the runs are not independent or the ESS is wrong) and not
-    more than twice (resampling noise carried from earlier steps inflates the
-    asymptotic variance somewhat, Chopin 2004, but by a modest factor here
-    because the local-level model forgets its past quickly). The factors 0.5
-    and 2 are chosen; the observed median ratio is printed on failure."""
+    Kish's ESS) is the scale the service reports. Across steps, the typical
+    spread of the filtered mean over independent runs must be of that size:
+    the median over steps of (RMS error over runs) / (RMS of sd_t/sqrt(ESS_t))
+    must lie in [0.5, 2] (factors chosen; observed about 1.0).
+
+    Not asserted step by step: the ESS at step t ignores degeneracy inherited
+    from earlier steps (Chopin 2004: the asymptotic variance accumulates over
+    time), and after the run of surprising years around 1899-1904 (the drop in
+    the Nile's flow, Cobb 1978) the ESS-based standard error understates the
+    actual Monte Carlo error by a factor of up to about 3 in 30 exploratory runs,
+    so single-run errors of 8-9 such standard errors occur there. The per-step
+    check is therefore made with the replicate-based standard error above."""
     _, res = reference
     sd_kalman = np.sqrt(res.filtered_state_cov[0, 0])
     ess_se = sd_kalman / np.sqrt(runs["ess"])  # (R, T)
     err = runs["means"] - res.filtered_state[0]
-    # Root-mean-square over runs of the error, against the RMS of the ESS-based s.e.
     ratio = np.sqrt((err**2).mean(axis=0)) / np.sqrt((ess_se**2).mean(axis=0))
     med = float(np.median(ratio))
     assert 0.5 <= med <= 2.0, f"median spread / ESS-based s.e. = {med:.3f}"
-    # And in each run, at every step, the error stays within 8 ESS-based s.e.
-    # (about 4 of the empirical standard deviations if the inflation is at most 2).
-    assert np.all(np.abs(err) <= 8 * ess_se), float(np.max(np.abs(err) / ess_se))
 
 
 @pytest.mark.slow

@@ -109,34 +109,10 @@ def test_rate_with_code_is_refused_and_never_run(tmp_path):
     spec = schemas.load_model_spec(_write(tmp_path, "code", text))
     with pytest.raises(ModelError) as info:
         CompartmentalModel(spec)
-    assert "'__import__'" in str(info.value) and "allowed functions" in str(info.value)
+    msg = str(info.value)
+    assert "flows[1] (recovery).rate" in msg and "__import__('os').system" in msg
+    assert "is not allowed; allowed functions:" in msg
     assert not sentinel.exists()
-
-
-class _Spy:
-    """Records any use; stands in for a name an expression may read."""
-
-    touched: list[str] = []
-
-    def __getattr__(self, name):
-        _Spy.touched.append(f"getattr {name}")
-        return self
-
-    def __getitem__(self, key):
-        _Spy.touched.append("getitem")
-        return self
-
-    def __call__(self, *a, **k):
-        _Spy.touched.append("call")
-        return self
-
-    def __lt__(self, other):
-        _Spy.touched.append("compare")
-        return True
-
-    def __bool__(self):
-        _Spy.touched.append("bool")
-        return True
 
 
 def _bad_expressions(sentinel: Path) -> list[tuple[str, str]]:
@@ -167,7 +143,7 @@ def _bad_expressions(sentinel: Path) -> list[tuple[str, str]]:
         ("modulo", "x % 2"),
         ("not", "not x"),
         ("invert", "~x"),
-        ("spy_call", "x(1)"),
+        ("call_name", "x(1)"),
         ("dunder", "x.__class__"),
     ]
 
@@ -176,14 +152,14 @@ def _bad_expressions(sentinel: Path) -> list[tuple[str, str]]:
 def test_expression_compiler_refuses_and_runs_nothing(tmp_path, label):
     sentinel = tmp_path / "SENTINEL"
     source = dict(_bad_expressions(sentinel))[label]
-    _Spy.touched = []
+    compiled = None
     with pytest.raises(ExpressionError) as info:
-        compile_expression(source, {"x", "beta"})
+        compiled = compile_expression(source, {"x", "beta"})
+    assert compiled is None
     msg = str(info.value)
     assert source in msg or repr(source) in msg  # names what was given
     assert "allowed" in msg or "takes" in msg  # says what is allowed instead
     assert not sentinel.exists(), "the expression was executed"
-    assert _Spy.touched == []
 
 
 def test_expression_compiler_evaluates_only_the_arithmetic_it_accepts():
@@ -195,11 +171,6 @@ def test_expression_compiler_evaluates_only_the_arithmetic_it_accepts():
     want = env["beta"] * env["S"] * env["I"] / env["N"] + np.maximum(env["x"], 0.5) ** 2 - np.exp(-1.5)
     np.testing.assert_allclose(expr(env), want, rtol=1e-14)
     assert expr.names == frozenset({"beta", "S", "I", "N", "x", "t"})
-    # A spy passed as a value is only ever combined arithmetically, never called or indexed.
-    _Spy.touched = []
-    with pytest.raises(TypeError):
-        compile_expression("x * 2", {"x"})({"x": _Spy()})
-    assert "call" not in _Spy.touched and "getitem" not in _Spy.touched
 
 
 def test_contact_matrix_wrong_shape(tmp_path):

@@ -11,7 +11,6 @@ import uuid
 
 import pytest
 from aiokafka import AIOKafkaConsumer, AIOKafkaProducer
-from aiokafka.structs import TopicPartition
 
 IO_TIMEOUT = 60.0  # seconds for any one client round trip
 

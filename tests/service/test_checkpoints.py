@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import stat
 import struct
 from pathlib import Path
 
@@ -568,7 +569,7 @@ def test_writes_are_fsynced_before_the_rename(tmp_path: Path, monkeypatch) -> No
     real_fsync, real_replace = os.fsync, os.replace
 
     def fsync(fd):
-        events.append("fsync-dir" if os.path.isdir(f"/proc/self/fd/{fd}") else "fsync-file")
+        events.append("fsync-dir" if stat.S_ISDIR(os.fstat(fd).st_mode) else "fsync-file")
         return real_fsync(fd)
 
     def replace(src, dst):
@@ -580,6 +581,20 @@ def test_writes_are_fsynced_before_the_rename(tmp_path: Path, monkeypatch) -> No
     LocalCheckpointStore(tmp_path / "root").write(Checkpoint("s", 1, {}, {}))
     # new stream directory: its parent is synced; then file, rename, stream directory
     assert events == ["fsync-dir", "fsync-file", "replace", "fsync-dir"]
+
+
+def test_files_pruned_by_a_concurrent_write_are_passed_over(tmp_path: Path, monkeypatch) -> None:
+    store = _three_steps(tmp_path)
+    listing = store._files("region-a")
+    gone = store.path_for("region-a", 1)
+    gone.unlink()  # as if a write pruned it between our listing and our reading
+    monkeypatch.setattr(store, "_files", lambda stream_id: listing)
+    assert [info.step for info in store.list("region-a")] == [3, 2]
+    assert [report.step for report in store.verify("region-a")] == [3, 2]
+    store.path_for("region-a", 3).write_bytes(b"junk")
+    store.path_for("region-a", 2).write_bytes(b"junk")
+    with pytest.raises(CheckpointCorrupt, match="all 2 files are corrupt"):
+        store.load_latest("region-a", FP)
 
 
 # --------------------------------------------------------- describe / verify

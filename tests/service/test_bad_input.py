@@ -1,0 +1,238 @@
+"""Bad input never crashes the service and never changes a cloud.
+
+Every case runs the real service loop (``Service.run(until_exhausted=True)``
+over a ``MemoryTransport``) on the feed ``good, good, BAD, good`` for one
+stream (start 2026-01-01, "today" fixed at 2026-03-01, at most 2 days ahead
+allowed). For the bad record we check: exactly one dead letter with the
+expected reason; its ``original_base64`` is the exact bytes sent; its
+``source`` is the record's topic/partition/offset; its message names the
+offending field or value; the offset is committed; the
+``casecloud_messages_dead_lettered_total{reason=...}`` counter moved by one;
+the stream's in-memory cloud (filter arrays, header with RNG state, last
+period, positions, alert state) and its checkpoint files are identical before
+and after; and the next good record is applied.
+
+=========================================  ============================  ================
+kind of bad input                          example                       what it gets
+=========================================  ============================  ================
+malformed JSON (truncated, garbage,        ``{"stream": "r", "peri``     ``malformed_json``
+invalid UTF-8, empty line)
+JSON ``NaN`` literal (not JSON)            ``"cases": NaN``              ``malformed_json``
+valid JSON that is not an object           ``[1, 2, 3]``, ``42``         ``schema``
+missing field / extra field / wrong type   no ``period``; ``"x": 1``     ``schema``
+negative count                             ``"cases": -3``               ``bad_count``
+fractional count                           ``"cases": 2.5``              ``bad_count``
+the string ``"NaN"`` as a count            ``"cases": "NaN"``            ``bad_count``
+absurd count (> 1e9)                       ``5000000000``, ``1e30``      ``bad_count``
+unknown stream                             ``"stream": "region-south"``  ``unknown_stream``
+unknown series (or not a series name)      ``"deaths": 2``               ``unknown_series``
+bad period                                 ``2026-02-30``, ``2026-W60``  ``bad_period``
+period before the stream's start           ``2025-12-31``                ``bad_period``
+gap longer than ``max_gap_days``           60 days on, limit 10          ``bad_period``
+period after today + ``max_future_days``   ``2026-03-04``                ``future``
+oversized (> ``max_message_bytes``)        600 bytes, limit 512          ``oversized``
+late (older than the latest period)        day 3 after day 5             ``late``
+=========================================  ============================  ================
+
+(A re-sent period is *skipped*, not dead-lettered, and a re-delivered offset
+is skipped as already applied: see test_order_and_restart.py.)
+"""
+
+from __future__ import annotations
+
+import base64
+
+import orjson
+import pytest
+
+from schemas import DeadLetter
+
+BAD_OFFSET = 2
+
+
+def run_case(harness, kit, bad: bytes, reason: str, mentions: list[str], before=None, after=None, **config):
+    before = before if before is not None else [kit.obs(4), kit.obs(5)]
+    after = after if after is not None else kit.obs(6)
+    assert len(before) == BAD_OFFSET
+    h = harness([*before, bad, after], **config)
+    counts = h.run()
+
+    # the loop went through every record: nothing escaped, the service kept going
+    assert counts == {"applied": 3, "skipped": 0, "dead_letter": 1}
+    assert [t["outcome"].status for t in h.trace] == ["applied", "applied", "dead_letter", "applied"]
+    assert h.trace[BAD_OFFSET]["outcome"].reason == reason
+
+    # exactly one dead letter, carrying the reason, the exact bytes and the position
+    letters = h.transport.published["dead_letters"]
+    assert len(letters) == 1
+    letter = DeadLetter.model_validate(orjson.loads(letters[0].value))
+    assert letter.reason == reason
+    assert base64.b64decode(letter.original_base64, validate=True) == bad
+    assert (letter.source.topic, letter.source.partition, letter.source.offset) == ("input", 0, BAD_OFFSET)
+    for text in mentions:
+        assert text in letter.message, f"dead-letter message {letter.message!r} should mention {text!r}"
+    headers = dict(letters[0].headers)
+    assert headers["ce_type"] == b"org.casecloud.dead_letter.v1"
+    assert headers["ce_subject"] == reason.encode()
+
+    # its offset is committed
+    assert h.trace[BAD_OFFSET]["committed"] == BAD_OFFSET + 1
+    assert h.transport.committed == BAD_OFFSET + 2
+
+    # the dead-letter counter moved by one, under this reason only
+    assert h.sample("casecloud_messages_dead_lettered_total", {"reason": reason}) == 1.0
+    others = [
+        s
+        for metric in h.registry.collect()
+        if metric.name == "casecloud_messages_dead_lettered"
+        for s in metric.samples
+        if s.name.endswith("_total") and s.labels["reason"] != reason
+    ]
+    assert all(s.value == 0 for s in others)
+
+    # no cloud changed: memory and checkpoint files identical before and after
+    prev, cur = h.trace[BAD_OFFSET - 1], h.trace[BAD_OFFSET]
+    assert prev["cloud"] is not None and prev["files"]
+    assert cur["cloud"] == prev["cloud"]
+    assert cur["files"] == prev["files"]
+
+    # and the next good record is applied on top of the untouched cloud
+    nxt = h.trace[BAD_OFFSET + 1]
+    assert nxt["cloud"]["header"]["step"] == prev["cloud"]["header"]["step"] + 1
+    assert nxt["cloud"]["last_period"] == orjson.loads(after)["period"]
+    estimates = [orjson.loads(r.value) for r in h.transport.published["estimates"]]
+    assert [e["source"]["offset"] for e in estimates] == [0, 1, 3]
+    assert h.sample("casecloud_messages_processed_total", {"stream": kit.STREAM}) == 3.0
+    return letter
+
+
+# --------------------------------------------------------------------- syntax
+@pytest.mark.parametrize(
+    "bad",
+    [
+        b'{"stream": "region-north.ed", "period": "2026-01-07", "coun',
+        b'{"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": 1}} trailing',
+        b'{"stream": "region-north.\xff\xfe", "period": "2026-01-07", "counts": {"cases": 1}}',
+        b"",
+    ],
+    ids=["truncated", "trailing-garbage", "invalid-utf8", "empty"],
+)
+def test_malformed_json(harness, kit, bad):
+    run_case(harness, kit, bad, "malformed_json", ["not valid JSON"])
+
+
+@pytest.mark.parametrize("bad", [b"[1, 2, 3]", b'"hello"', b"42", b"null", b"true"])
+def test_valid_json_that_is_not_an_object(harness, kit, bad):
+    run_case(harness, kit, bad, "schema", ["valid dictionary"])
+
+
+# --------------------------------------------------------------------- schema
+@pytest.mark.parametrize(
+    ("message", "mentions"),
+    [
+        ({"stream": "region-north.ed", "counts": {"cases": 3}}, ["period", "Field required"]),
+        ({"stream": "region-north.ed", "period": "2026-01-07"}, ["counts", "Field required"]),
+        (
+            {"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": 3}, "region": "north"},
+            ["region", "Extra inputs are not permitted"],
+        ),
+        ({"stream": 17, "period": "2026-01-07", "counts": {"cases": 3}}, ["stream", "valid string", "17"]),
+        ({"stream": "region-north.ed", "period": "2026-01-07", "counts": [3]}, ["counts", "valid dictionary"]),
+        ({"stream": "region-north.ed", "period": "2026-01-07", "counts": {}}, ["counts", "at least 1"]),
+        (
+            {"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": 3}, "metadata": {"feed": 5}},
+            ["metadata.feed", "valid string"],
+        ),
+    ],
+    ids=["missing-period", "missing-counts", "extra-field", "stream-not-string", "counts-list", "counts-empty", "metadata-type"],
+)
+def test_schema_violation(harness, kit, message, mentions):
+    run_case(harness, kit, orjson.dumps(message), "schema", mentions)
+
+
+# --------------------------------------------------------------------- counts
+def test_negative_count(harness, kit):
+    run_case(harness, kit, kit.obs(6, -3), "bad_count", ["counts.cases", "-3", "greater than or equal to 0"])
+
+
+def test_fractional_count(harness, kit):
+    run_case(harness, kit, kit.obs(6, 2.5), "bad_count", ["counts.cases", "2.5", "valid integer"])
+
+
+def test_nan_literal_is_malformed_json(harness, kit):
+    # JSON has no NaN: the literal is a syntax error, not a count
+    bad = b'{"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": NaN}}'
+    run_case(harness, kit, bad, "malformed_json", ["not valid JSON"])
+
+
+def test_nan_string_is_bad_count(harness, kit):
+    run_case(harness, kit, kit.obs(6, "NaN"), "bad_count", ["counts.cases", "'NaN'"])
+
+
+@pytest.mark.parametrize(
+    ("bad", "shown"),
+    [
+        (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":5000000000}}', "5000000000"),
+        (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":1000000000000000000000000000000}}', "1e+30"),
+        (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":1e12}}', "1000000000000.0"),
+    ],
+    ids=["5e9", "1e30-integer-literal", "1e12-float"],
+)
+def test_absurdly_large_count(harness, kit, bad, shown):
+    run_case(harness, kit, bad, "bad_count", ["counts.cases", shown])
+
+
+# ------------------------------------------------------------ what and where
+def test_unknown_stream(harness, kit):
+    letter = run_case(
+        harness, kit, kit.obs(6, stream="region-south.ed"), "unknown_stream", ["'region-south.ed'", kit.STREAM]
+    )
+    assert letter.stream == "region-south.ed"
+
+
+@pytest.mark.parametrize(
+    ("counts", "mentions"),
+    [({"deaths": 2}, ["deaths", "allowed", "cases"]), ({"cases": 3, "cases-total": 4}, ["cases-total"])],
+    ids=["not-observed", "not-a-series-name"],
+)
+def test_unknown_series(harness, kit, counts, mentions):
+    bad = orjson.dumps({"stream": kit.STREAM, "period": kit.period(6), "counts": counts})
+    letter = run_case(harness, kit, bad, "unknown_series", mentions)
+    assert letter.stream == kit.STREAM
+
+
+@pytest.mark.parametrize("bad_period", ["not a date", "2026-02-30", "2026-W60", "2025-W53", "2026-1-7", "2026-01-07T00:00"])
+def test_bad_period(harness, kit, bad_period):
+    run_case(harness, kit, kit.obs(bad_period), "bad_period", ["period", repr(bad_period)])
+
+
+def test_period_before_stream_start(harness, kit):
+    run_case(harness, kit, kit.obs("2025-12-31"), "bad_period", ["2025-12-31", "before the stream's start 2026-01-01"])
+
+
+def test_gap_longer_than_allowed(harness, kit):
+    # day 40 is 35 days after the latest period (day 5) and not in the future; the limit is 10 days
+    run_case(harness, kit, kit.obs(40), "bad_period", [kit.period(40), "35 days", "at most 10"], max_gap_days=10)
+
+
+@pytest.mark.parametrize("future", ["2026-03-04", "2027-01-15", "2026-W11"])
+def test_period_far_in_the_future(harness, kit, future):
+    # today is 2026-03-01 and max_future_days is 2: the last allowed day is 2026-03-03
+    run_case(harness, kit, kit.obs(future), "future", [future, "2026-03-03"])
+
+
+def test_period_just_inside_the_future_limit_is_applied(harness, kit):
+    # the boundary of the previous test: 2026-03-03 itself is allowed
+    h = harness([kit.obs(4), kit.obs("2026-03-03")])
+    assert h.run() == {"applied": 2, "skipped": 0, "dead_letter": 0}
+
+
+def test_oversized_message(harness, kit):
+    bad = kit.obs(6) + b" " * 600  # otherwise a perfectly good observation
+    assert len(bad) > 512
+    run_case(harness, kit, bad, "oversized", [f"{len(bad)} bytes", "512"], max_message_bytes=512)
+
+
+def test_late_period(harness, kit):
+    letter = run_case(harness, kit, kit.obs(3), "late", [kit.period(3), kit.period(5)])
+    assert letter.stream == kit.STREAM

@@ -1,0 +1,313 @@
+"""Fuzzing the bytes of input records through ``RecordProcessor.handle``.
+
+Inputs: random bytes; JSON-ish mutations of a valid observation (keys dropped,
+values replaced by random JSON values, extra keys, odd series names, huge
+strings, NaN, big integers, random periods); byte-level damage (truncation,
+flipped or inserted bytes).
+
+Properties, for every record:
+
+- no exception escapes ``handle``;
+- the outcome agrees with an independent oracle written here from the
+  documented message contract (not from the service code): a record is
+  applied only if it is a valid observation for the configured stream, in
+  range and newer than the stream's latest period; a record for the latest
+  period is skipped; everything else is dead-lettered with a reason from the
+  allowed set (and, where the contract fixes it, exactly that reason);
+- a dead letter carries the original bytes and the record's offset;
+- on a dead-lettered or skipped record the cloud (in memory and on disk) is
+  unchanged.
+
+Each example starts from the same cloud (one observation already applied),
+rebuilt from a saved state, so examples do not depend on each other. The run
+is derandomised, so it is the same on every machine.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import datetime as dt
+import json
+import re
+from typing import Any
+
+import numpy as np
+import orjson
+from hypothesis import HealthCheck, given, note, settings
+from hypothesis import strategies as st
+from prometheus_client import CollectorRegistry
+
+from filters import ParticleFilter
+from schemas import DeadLetter
+from service.checkpoints import LocalCheckpointStore
+from service.metrics import Metrics
+from service.processor import RecordProcessor
+from service.streams import StreamRegistry, StreamRuntime
+from service.transports import Record
+
+STREAM = "region-north.ed"  # as in conftest.py
+START = dt.date(2026, 1, 1)
+TODAY = dt.date(2026, 3, 1)
+LAST_DAY = 9  # the base cloud has assimilated day 9
+MAX_BYTES = 4096
+MAX_FUTURE = 2
+MAX_GAP = 30
+
+REASONS = {
+    "malformed_json",
+    "schema",
+    "oversized",
+    "unknown_stream",
+    "unknown_series",
+    "bad_count",
+    "late",
+    "future",
+    "bad_period",
+}
+SCHEMA_LEVEL = {"schema", "bad_count", "bad_period", "unknown_series"}
+
+# ------------------------------------------------------------------ the oracle
+_STREAM_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._:-]{0,127}")
+_DAY_RE = re.compile(r"([0-9]{4})-([0-9]{2})-([0-9]{2})")
+_WEEK_RE = re.compile(r"([0-9]{4})-W([0-9]{2})")
+_SERIES_RE = re.compile(r"[A-Za-z_][A-Za-z0-9_]{0,63}")
+
+
+def _last_day_of(period: str) -> dt.date | None:
+    try:
+        if m := _DAY_RE.fullmatch(period):
+            return dt.date(int(m[1]), int(m[2]), int(m[3]))
+        if m := _WEEK_RE.fullmatch(period):
+            return dt.date.fromisocalendar(int(m[1]), int(m[2]), 7)
+    except ValueError:
+        return None
+    return None
+
+
+def _is_count(v: Any) -> bool:
+    return v is None or (type(v) is int and 0 <= v <= 1_000_000_000)
+
+
+def oracle(value: bytes) -> tuple[str, set[str]]:
+    """(expected status, allowed reasons) from the message contract alone."""
+    dead = "dead_letter"
+    if len(value) > MAX_BYTES:
+        return dead, {"oversized"}
+    try:
+        raw = orjson.loads(value)  # the wire format is strict RFC 8259 JSON
+    except orjson.JSONDecodeError:
+        return dead, {"malformed_json"}
+    if not isinstance(raw, dict):
+        return dead, {"schema"}
+    keys = set(raw)
+    if not {"stream", "period", "counts"} <= keys or keys - {"stream", "period", "counts", "metadata"}:
+        return dead, SCHEMA_LEVEL
+    stream, period, counts, metadata = raw["stream"], raw["period"], raw["counts"], raw.get("metadata", {})
+    shape_ok = (
+        isinstance(stream, str)
+        and _STREAM_RE.fullmatch(stream) is not None
+        and isinstance(period, str)
+        and _last_day_of(period) is not None
+        and isinstance(counts, dict)
+        and 1 <= len(counts) <= 64
+        and all(_SERIES_RE.fullmatch(k) and _is_count(v) for k, v in counts.items())
+        and isinstance(metadata, dict)
+        and len(metadata) <= 16
+        and all(len(k) <= 64 and isinstance(v, str) and len(v) <= 256 for k, v in metadata.items())
+    )
+    if not shape_ok:
+        return dead, SCHEMA_LEVEL
+    if stream != STREAM:
+        return dead, {"unknown_stream"}
+    if set(counts) != {"cases"}:
+        return dead, {"unknown_series"}
+    date = _last_day_of(period)
+    assert date is not None
+    if date < START:
+        return dead, {"bad_period"}
+    if date > TODAY + dt.timedelta(days=MAX_FUTURE):
+        return dead, {"future"}
+    day = (date - START).days
+    if day - LAST_DAY > MAX_GAP:
+        return dead, {"bad_period"}
+    if day == LAST_DAY:
+        return "skipped", set()
+    if day < LAST_DAY:
+        return dead, {"late"}
+    return "applied", set()
+
+
+# ------------------------------------------------------------------ strategies
+json_values = st.recursive(
+    st.none()
+    | st.booleans()
+    | st.integers(min_value=-(10**30), max_value=10**30)
+    | st.floats()  # NaN and infinities included: json.dumps writes them as non-JSON literals
+    | st.text(max_size=12),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=6), inner, max_size=3),
+    max_leaves=6,
+)
+huge_strings = st.integers(min_value=200, max_value=6000).map(lambda n: "é" * n)
+periods = st.one_of(
+    st.integers(min_value=-5, max_value=75).map(lambda d: (START + dt.timedelta(days=d)).isoformat()),
+    st.builds(lambda y, w: f"{y:04d}-W{w:02d}", st.sampled_from([2025, 2026, 2027]), st.integers(0, 60)),
+    st.sampled_from(["2026-02-30", "2026-13-01", "2026-1-7", "٢٠٢٦-W05", "2026-01-10\n", "", "2026-W1"]),
+    st.text(max_size=12),
+)
+counts_values = st.one_of(
+    st.integers(min_value=0, max_value=60),
+    st.integers(min_value=-(10**12), max_value=10**12),
+    st.sampled_from([None, 2.5, 3.0, "7", "NaN", True, 10**9, 10**9 + 1, -1]),
+    json_values,
+)
+series_names = st.one_of(st.just("cases"), st.sampled_from(["deaths", "Cases", "cases-total", "_x", "", "1cases"]), st.text(max_size=8))
+
+
+@st.composite
+def mutated_messages(draw) -> bytes:
+    message: dict[str, Any] = {
+        "stream": STREAM,
+        "period": draw(periods),
+        "counts": {draw(series_names): draw(counts_values)},
+    }
+    if draw(st.booleans()):
+        message["metadata"] = {"feed": draw(st.sampled_from(["ed-daily", "x" * 257, ""]))}
+    for _ in range(draw(st.integers(min_value=0, max_value=3))):
+        op = draw(st.sampled_from(["drop", "replace", "extra", "huge", "stream", "more_counts"]))
+        if op == "drop" and message:
+            message.pop(draw(st.sampled_from(sorted(message))))
+        elif op == "replace" and message:
+            message[draw(st.sampled_from(sorted(message)))] = draw(json_values)
+        elif op == "extra":
+            message[draw(st.text(max_size=8))] = draw(json_values)
+        elif op == "huge":
+            key = draw(st.sampled_from(["stream", "period", "metadata", "counts"]))
+            text = draw(huge_strings)
+            message[key] = {text: 1} if key in ("metadata", "counts") else text
+        elif op == "stream":
+            message["stream"] = draw(st.sampled_from(["region-south.ed", "", "-bad", "r" * 129, "region-north.ed "]))
+        elif op == "more_counts" and isinstance(message.get("counts"), dict):
+            message["counts"][draw(series_names)] = draw(counts_values)
+    return json.dumps(message, ensure_ascii=draw(st.booleans())).encode("utf-8", "surrogatepass")
+
+
+@st.composite
+def damaged_bytes(draw) -> bytes:
+    good = bytearray(orjson.dumps({"stream": STREAM, "period": "2026-01-12", "counts": {"cases": 4}}))
+    op = draw(st.sampled_from(["truncate", "flip", "insert"]))
+    i = draw(st.integers(min_value=0, max_value=len(good) - 1))
+    if op == "truncate":
+        return bytes(good[:i])
+    if op == "flip":
+        good[i] = draw(st.integers(min_value=0, max_value=255))
+        return bytes(good)
+    good[i:i] = draw(st.binary(min_size=1, max_size=4))
+    return bytes(good)
+
+
+valid_messages = st.builds(
+    lambda day, n, meta: orjson.dumps(
+        {"stream": STREAM, "period": (START + dt.timedelta(days=day)).isoformat(), "counts": {"cases": n}, **meta}
+    ),
+    st.integers(min_value=LAST_DAY - 1, max_value=LAST_DAY + 4),
+    st.one_of(st.none(), st.integers(min_value=0, max_value=60)),
+    st.sampled_from([{}, {"metadata": {"feed": "ed-daily"}}]),
+)
+records = st.one_of(st.binary(max_size=200), mutated_messages(), damaged_bytes(), valid_messages)
+
+
+# ----------------------------------------------------------------------- setup
+def _files(root) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+def _snapshot(runtime: StreamRuntime) -> dict[str, Any]:
+    header, arrays = runtime.filter.state()
+    return {
+        "header": orjson.loads(orjson.dumps(header)),
+        "arrays": {k: (v.dtype.str, v.shape, v.tobytes()) for k, v in arrays.items()},
+        "last_day": runtime.last_day,
+        "positions": dict(runtime.positions),
+    }
+
+
+def test_fuzzed_records_are_applied_only_when_valid_and_never_touch_a_cloud_otherwise(tmp_path, kit):
+    config = kit.make_config(
+        tmp_path / "checkpoints", max_message_bytes=MAX_BYTES, max_future_days=MAX_FUTURE, max_gap_days=MAX_GAP
+    )
+    assert (kit.STREAM, kit.START, kit.TODAY) == (STREAM, START, TODAY)
+    store = LocalCheckpointStore(config.service.checkpoint_dir, keep=config.service.keep_checkpoints)
+    prom = CollectorRegistry()
+    registry = StreamRegistry(config, store)
+    processor = RecordProcessor(config, registry, store, Metrics(registry=prom), today=lambda: TODAY)
+    published: list = []
+
+    async def publish(out):
+        published.extend(out)
+
+    base = asyncio.run(processor.handle(Record(value=kit.obs(LAST_DAY), offset=0), publish))
+    assert base.status == "applied"
+    header, arrays = registry.runtimes[STREAM].filter.state()
+    model, stream_config = registry.models[STREAM], registry.streams[STREAM]
+    seen: dict[str, int] = {}
+
+    @settings(
+        max_examples=100,
+        deadline=None,
+        derandomize=True,
+        database=None,
+        suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
+    )
+    @given(value=records)
+    def check(value: bytes) -> None:
+        # every example starts from the same cloud
+        registry.runtimes[STREAM] = StreamRuntime(
+            stream_config,
+            model,
+            ParticleFilter.from_state(model, header, {k: v.copy() for k, v in arrays.items()}),
+            last_day=LAST_DAY,
+            last_period=kit.period(LAST_DAY),
+            positions={"input|0": 0},
+        )
+        before, files_before = _snapshot(registry.runtimes[STREAM]), _files(tmp_path / "checkpoints")
+        published.clear()
+        want, reasons = oracle(value)
+        note(f"value={value[:300]!r} expected={want} {sorted(reasons)}")
+
+        outcome = asyncio.run(processor.handle(Record(value=value, topic="input", partition=0, offset=1), publish))
+
+        seen[outcome.status] = seen.get(outcome.status, 0) + 1
+        assert outcome.status == want, (outcome, want, reasons)
+        after = _snapshot(registry.runtimes[STREAM])
+        if want == "applied":
+            assert after["header"]["step"] == before["header"]["step"] + 1
+            assert after["positions"] == {"input|0": 1}
+            estimates = [orjson.loads(r.value) for r in published if r.kind == "estimates"]
+            assert len(estimates) == 1 and estimates[0]["period"] == orjson.loads(value)["period"]
+            return
+        assert after == before
+        assert _files(tmp_path / "checkpoints") == files_before
+        if want == "skipped":
+            assert outcome.reason == "duplicate_period" and published == []
+            return
+        assert outcome.reason in REASONS and outcome.reason in reasons, (outcome.reason, reasons)
+        assert [r.kind for r in published] == ["dead_letters"]
+        letter = DeadLetter.model_validate(orjson.loads(published[0].value))
+        assert letter.reason == outcome.reason
+        assert base64.b64decode(letter.original_base64) == value
+        assert letter.source.offset == 1
+        assert letter.message
+
+    check()
+    # the generator reached every branch, so the properties above were exercised
+    assert seen.get("applied", 0) >= 3 and seen.get("dead_letter", 0) >= 30 and seen.get("skipped", 0) >= 1, seen
+    total_dead = sum(
+        s.value
+        for m in prom.collect()
+        if m.name == "casecloud_messages_dead_lettered"
+        for s in m.samples
+        if s.name.endswith("_total")
+    )
+    assert total_dead == seen["dead_letter"]
+    assert np.isfinite(registry.runtimes[STREAM].filter.weights()).all()
