@@ -130,7 +130,12 @@ class RecordProcessor:
         started = time.perf_counter()
         await publish(outputs)
         self.metrics.publish_seconds.observe(time.perf_counter() - started)
-        info = await asyncio.to_thread(self.store.write, runtime.to_checkpoint())
+        try:
+            info = await asyncio.to_thread(self.store.write, runtime.to_checkpoint())
+        except Exception:
+            # Fail loudly: without a checkpoint the offset must not be committed.
+            self.metrics.checkpoint_failures.labels(runtime.id).inc()
+            raise
         self.metrics.checkpoint_seconds.observe(info.seconds)
         self.metrics.checkpoint_bytes.labels(runtime.id).set(info.size_bytes)
         return Outcome("applied", None, runtime.id, outputs)
