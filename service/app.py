@@ -50,11 +50,14 @@ class Service:
 
     async def _on_assign(self, assigned: Sequence[tuple[str, int]]):
         resume = await asyncio.to_thread(self.registry.resume_offsets, list(assigned))
-        for stream, skipped in self.registry.fallbacks:
-            self.metrics.checkpoint_fallbacks.labels(stream).inc()
-        self.registry.fallbacks.clear()
+        self._count_fallbacks()
         log.info("resuming partitions at %s", resume)
         return resume
+
+    def _count_fallbacks(self) -> None:
+        for stream, _ in self.registry.fallbacks:
+            self.metrics.checkpoint_fallbacks.labels(stream).inc()
+        self.registry.fallbacks.clear()
 
     async def _publish(self, records: list[OutRecord]) -> None:
         if records:
@@ -70,6 +73,9 @@ class Service:
         self.metrics.watch_lag(self.transport.lag)
         lock = getattr(self.transport, "processing", None) or asyncio.Lock()
         try:
+            # Fail fast on unusable saved state (e.g. a checkpoint of another model).
+            await asyncio.to_thread(self.registry.preload)
+            self._count_fallbacks()
             await self.transport.start(on_assign=self._on_assign)
             self.ready = True
             while not stop.is_set():

@@ -82,6 +82,8 @@ from typing import Any
 import numpy as np
 import orjson
 
+from .errors import StreamStateError
+
 __all__ = [
     "FORMAT_VERSION",
     "MAGIC",
@@ -126,13 +128,17 @@ _ALLOWED_TEXT = "bool, int8..int64, uint8..uint64, float16/32/64, complex64/128"
 
 
 # ---------------------------------------------------------------------- errors
-class CheckpointError(Exception):
+class CheckpointError(StreamStateError):
     """A checkpoint could not be written, read or used."""
 
     def __init__(self, message: str, *, path: Path | str | None = None, stream_id: str | None = None) -> None:
-        super().__init__(message)
+        super().__init__(message, stream=stream_id)
+        self.args = (message,)
         self.path = Path(path) if path is not None else None
         self.stream_id = stream_id
+
+    def __str__(self) -> str:
+        return str(self.args[0])
 
 
 class CheckpointCorrupt(CheckpointError):

@@ -25,22 +25,33 @@ def _load_config(path: str):
         raise SystemExit(2) from None
 
 
-async def _serve(config, transport, until_exhausted: bool) -> dict[str, int]:
+async def _serve(config, transport, until_exhausted: bool, progress=None) -> dict[str, int]:
     from .app import Service
 
     stop = asyncio.Event()
     loop = asyncio.get_running_loop()
     for sig in (signal.SIGTERM, signal.SIGINT):
         loop.add_signal_handler(sig, stop.set)
-    service = Service(config, transport)
+    service = Service(config, transport, on_outcome=progress)
     return await service.run(stop, until_exhausted=until_exhausted)
 
 
-def _run_service(config, transport, until_exhausted: bool) -> int:
+def _progress_printer(every: int = 100):
+    seen = {"n": 0}
+
+    def show(outcome) -> None:
+        seen["n"] += 1
+        if seen["n"] % every == 0:
+            print(f"casecloud: {seen['n']} records handled", file=sys.stderr, flush=True)
+
+    return show
+
+
+def _run_service(config, transport, until_exhausted: bool, progress=None) -> int:
     from .errors import ServiceError
 
     try:
-        counts = asyncio.run(_serve(config, transport, until_exhausted))
+        counts = asyncio.run(_serve(config, transport, until_exhausted, progress))
     except ServiceError as exc:
         print(f"casecloud: {exc}", file=sys.stderr)
         return 1
@@ -68,7 +79,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if args.checkpoint_dir:
         config = config.model_copy(update={"service": config.service.model_copy(update={"checkpoint_dir": Path(args.checkpoint_dir)})})
     config = config.model_copy(update={"metrics": config.metrics.model_copy(update={"enabled": False})})
-    return _run_service(config, FileTransport(Path(args.input), out), until_exhausted=True)
+    return _run_service(config, FileTransport(Path(args.input), out), until_exhausted=True, progress=_progress_printer())
 
 
 def cmd_demo(args: argparse.Namespace) -> int:

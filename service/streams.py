@@ -87,7 +87,8 @@ class StreamRegistry:
                         stream=s.id,
                     )
         self.runtimes: dict[str, StreamRuntime] = {}
-        self.fallbacks: list[tuple[str, list[tuple[str, str]]]] = []
+        self.fallbacks: list[tuple[str, list[tuple[str, str]]]] = []  # not yet counted in metrics
+        self._reported: set[tuple[str, str]] = set()
 
     def get(self, stream_id: str) -> StreamRuntime | None:
         """The stream's runtime, or None if the stream is not configured."""
@@ -112,9 +113,11 @@ class StreamRegistry:
             rng = stream_generator(self.config.service.seed, stream_id)
             pf = ParticleFilter(model, self._filter_config(s), rng, time=0)
             return StreamRuntime(s, model, pf)
-        if loaded.skipped:
+        fresh = [(p, r) for p, r in loaded.skipped if (stream_id, str(p)) not in self._reported]
+        if fresh:
+            self._reported.update((stream_id, str(p)) for p, _ in fresh)
             log.warning("stream %s: skipped corrupt checkpoints %s; using %s", stream_id, loaded.skipped, loaded.path)
-            self.fallbacks.append((stream_id, [(str(p), r) for p, r in loaded.skipped]))
+            self.fallbacks.append((stream_id, [(str(p), r) for p, r in fresh]))
         cp = loaded.checkpoint
         pf = ParticleFilter.from_state(model, cp.header["filter"], {k: np.asarray(v) for k, v in cp.arrays.items()})
         return StreamRuntime(
@@ -126,6 +129,11 @@ class StreamRegistry:
             positions={k: int(v) for k, v in cp.header.get("positions", {}).items()},
             alerts={k: AlertState.from_json(v) for k, v in cp.header.get("alerts", {}).items()},
         )
+
+    def preload(self) -> None:
+        """Load (or create) every configured stream now; raises on unusable checkpoints."""
+        for stream_id in self.streams:
+            self.get(stream_id)
 
     def resume_offsets(self, assigned: list[tuple[str, int]]) -> dict[tuple[str, int], int]:
         """Where to resume each assigned partition: after the oldest position any

@@ -80,6 +80,9 @@ class FileTransport(Transport):
 
     async def receive(self, timeout: float = 1.0) -> Record | None:
         if self._eof or self._in is None:
+            # Nothing will come: wait out the timeout like a quiet broker would, so
+            # a polling loop yields to other tasks (signals, /metrics) instead of spinning.
+            await asyncio.sleep(timeout)
             return None
         if self._in is sys.stdin.buffer:
             line = await asyncio.get_running_loop().run_in_executor(None, self._in.readline)

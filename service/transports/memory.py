@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 from collections.abc import Sequence
 
 from .base import AssignmentHook, OutRecord, Record, Transport
@@ -20,6 +21,7 @@ class MemoryTransport(Transport):
             for i, r in enumerate(inputs)
         ]
         self.position = 0
+        self._idle = False
         self.committed: int | None = None
         self.published: dict[str, list[OutRecord]] = {"estimates": [], "alerts": [], "dead_letters": []}
 
@@ -38,7 +40,18 @@ class MemoryTransport(Transport):
 
     async def receive(self, timeout: float = 1.0) -> Record | None:
         if self.position >= len(self.inputs):
-            return None
+            if not self._idle:
+                self._idle = True  # the call that reaches the end answers at once
+                return None
+            # Later calls wait up to ``timeout`` for a fed record, so a polling loop
+            # yields to other tasks instead of spinning.
+            loop = asyncio.get_running_loop()
+            deadline = loop.time() + timeout
+            while self.position >= len(self.inputs) and loop.time() < deadline:
+                await asyncio.sleep(min(0.01, timeout))
+            if self.position >= len(self.inputs):
+                return None
+        self._idle = False
         record = self.inputs[self.position]
         self.position += 1
         return record

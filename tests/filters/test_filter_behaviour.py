@@ -304,6 +304,8 @@ def test_liu_west_keeps_weighted_mean_and_variance():
     se_var = np.sqrt((m4_w - var_w**2) / n)
     prod = w @ (c[:, 0] ** 2 * c[:, 1] ** 2)
     se_cov = math.sqrt((prod - cov_w[0, 1] ** 2) / n)
+    print(f"Liu-West: weighted mean {m_w} -> {m_post} (se {se_mean}); "
+          f"weighted var {var_w} -> {np.diag(cov_post)} (se {se_var})")
     assert np.all(np.abs(m_post - m_w) <= 4 * se_mean)
     assert np.all(np.abs(np.diag(cov_post) - var_w) <= 4 * se_var)
     assert abs(cov_post[0, 1] - cov_w[0, 1]) <= 4 * se_cov + 1e-12

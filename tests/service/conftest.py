@@ -110,7 +110,6 @@ class Harness:
         self.service = Service(
             self.config, self.transport, metrics=self.metrics, today=lambda: TODAY, on_outcome=self._record
         )
-        self.before = {"cloud": cloud_snapshot(self.service), "files": checkpoint_files(self.checkpoint_dir)}
 
     def _record(self, outcome: Outcome) -> None:
         self.trace.append(

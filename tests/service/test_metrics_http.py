@@ -10,6 +10,7 @@ from __future__ import annotations
 import asyncio
 
 import orjson
+import pytest
 from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 
@@ -80,8 +81,10 @@ def test_health_endpoints(kit, tmp_path):
     assert 0 < ess <= 200
 
 
+@pytest.mark.timeout(60)  # an idle loop that never yields would hang here, not fail
 def test_service_serves_metrics_and_readiness_while_running(kit, tmp_path):
-    """The service's own endpoint: not ready until the transport has started."""
+    """The service's own endpoint: not ready until the transport has started, and
+    served while the loop idles on an exhausted input (the loop must yield)."""
 
     class GatedTransport(MemoryTransport):
         def __init__(self, inputs):
