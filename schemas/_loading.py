@@ -17,12 +17,21 @@ M = TypeVar("M", bound=BaseModel)
 
 
 def _line_of(text: str, loc: tuple[Any, ...]) -> int | None:
-    """Best-effort line number of the last named key of ``loc`` in TOML text."""
-    keys = [k for k in loc if isinstance(k, str) and not k.startswith(("function-", "tagged-"))]
-    for key in reversed(keys):
-        # [ \t]* rather than \s*: \s would match newlines and report the blank line above.
+    """Best-effort line number of the field at ``loc`` in TOML text.
+
+    Follows ``[[table]]`` arrays by index (``flows[2].rate`` looks after the
+    third ``[[flows]]``), then finds the last named key from there.
+    """
+    parts = [k for k in loc if not (isinstance(k, str) and k.startswith(("function-", "tagged-")))]
+    position = 0
+    for key, nxt in zip(parts, parts[1:]):
+        if isinstance(key, str) and isinstance(nxt, int):
+            headers = list(re.finditer(rf"^[ \t]*\[\[[ \t]*([\w.-]*\.)?{re.escape(key)}[ \t]*\]\]", text, re.M))
+            if len(headers) > nxt:
+                position = headers[nxt].start()
+    for key in reversed([k for k in parts if isinstance(k, str)]):
         pattern = re.compile(rf'^[ \t]*(\[+[ \t]*)?([\w."-]*\.)?"?{re.escape(key)}"?[ \t]*(=|\]|\.)', re.M)
-        match = pattern.search(text)
+        match = pattern.search(text, position) or pattern.search(text)
         if match:
             return text.count("\n", 0, match.start()) + 1
     return None

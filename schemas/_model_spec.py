@@ -13,7 +13,8 @@ from pathlib import Path
 from typing import Annotated, Literal, Union
 
 import orjson
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic_core import InitErrorDetails, PydanticCustomError
 
 from ._loading import load_toml_model
 
@@ -246,82 +247,89 @@ class ModelSpec(_Strict):
     def _cross_references(self) -> "ModelSpec":
         comps = set(self.compartments)
         groups = [g.name for g in self.groups]
-        problems: list[str] = []
+        problems: list[InitErrorDetails] = []
 
-        def dupes(kind: str, names: list[str]) -> None:
-            seen = {n for n in names if names.count(n) > 1}
+        def problem(loc: tuple, message: str, given: object = None) -> None:
+            problems.append(
+                InitErrorDetails(
+                    type=PydanticCustomError("cross_reference", "{problem}", {"problem": message}),
+                    loc=loc,
+                    input=given,
+                )
+            )
+
+        def dupes(field: str, kind: str, names: list[str]) -> None:
+            seen = sorted({n for n in names if names.count(n) > 1})
             if seen:
-                problems.append(f"{kind} names must be unique, repeated: {sorted(seen)}")
+                problem((field,), f"{kind} names must be unique, repeated: {seen}", seen)
 
-        dupes("compartment", self.compartments)
-        dupes("group", groups)
-        dupes("flow", [f.name for f in self.flows])
-        dupes("series", [s.name for s in self.series])
+        dupes("compartments", "compartment", self.compartments)
+        dupes("groups", "group", groups)
+        dupes("flows", "flow", [f.name for f in self.flows])
+        dupes("series", "series", [s.name for s in self.series])
         value_keys = {frozenset(g.values) for g in self.groups}
         if len(value_keys) > 1:
-            problems.append("every group must define the same 'values' keys")
-        names_by_kind = {
-            "compartment": self.compartments,
-            "parameter": list(self.parameters),
-            "derived": list(self.derived),
-            "group value": sorted(set().union(*(g.values for g in self.groups))),
-        }
-        all_names: list[str] = [n for names in names_by_kind.values() for n in names]
+            problem(("groups",), "every group must define the same 'values' keys", sorted(map(sorted, value_keys)))
+        all_names: list[str] = [
+            *self.compartments,
+            *self.parameters,
+            *self.derived,
+            *sorted(set().union(*(g.values for g in self.groups))),
+        ]
         clash = sorted({n for n in all_names if all_names.count(n) > 1} | (set(all_names) & RESERVED_NAMES))
         if clash:
-            problems.append(
+            problem(
+                ("parameters",),
                 f"names {clash} are used twice or are reserved; compartments, parameters, derived "
-                f"quantities and group values share one namespace, and {sorted(RESERVED_NAMES)} are built in"
+                f"quantities and group values share one namespace, and {sorted(RESERVED_NAMES)} are built in",
+                clash,
             )
-        for f in self.flows:
+        for i, f in enumerate(self.flows):
             for end, c in (("from", f.source), ("to", f.target)):
                 if c not in comps:
-                    problems.append(f"flow {f.name!r}: '{end}' = {c!r} is not a compartment; allowed: {self.compartments}")
+                    problem(("flows", i, end), f"flow {f.name!r}: {c!r} is not a compartment; allowed: {self.compartments}", c)
             if f.source == f.target:
-                problems.append(f"flow {f.name!r} goes from {f.source!r} to itself")
+                problem(("flows", i, "to"), f"flow {f.name!r} goes from {f.source!r} to itself", f.target)
         if not any(f.infection for f in self.flows) and self.transmission.infectious:
-            problems.append("transmission.infectious is set but no flow has infection = true")
+            problem(("transmission", "infectious"), "infectious compartments are set but no flow has infection = true")
         for c in self.transmission.infectious:
             if c not in comps:
-                problems.append(f"transmission.infectious names {c!r}, not a compartment; allowed: {self.compartments}")
+                problem(("transmission", "infectious", c), f"{c!r} is not a compartment; allowed: {self.compartments}", c)
         g = len(self.groups)
         contact = self.transmission.contact
         if contact is None and g > 1:
-            problems.append(f"transmission.contact (a {g}x{g} matrix) is required with {g} groups")
+            problem(("transmission", "contact"), f"a {g}x{g} contact matrix is required with {g} groups")
         if contact is not None and (len(contact) != g or any(len(row) != g for row in contact)):
             shape = f"{len(contact)}x" + "/".join(sorted({str(len(row)) for row in contact}) or ["0"])
-            problems.append(f"transmission.contact must be {g}x{g} (one row and column per group), got {shape}")
+            problem(("transmission", "contact"), f"must be {g}x{g} (one row and column per group), got {shape}", contact)
         for name, p in self.parameters.items():
             if p.transform == "logit" and not all(map(lambda b: abs(b) < float("inf"), p.bounds)):
-                problems.append(
-                    f"parameter {name!r}: logit scale needs a bounded prior (uniform or beta), "
-                    f"got {p.prior.dist if p.prior is not None else 'no prior'}"
-                )
+                dist = p.prior.dist if p.prior is not None else "no prior"
+                problem(("parameters", name, "scale"), f"parameter {name!r}: logit scale needs a bounded prior (uniform or beta), got {dist}", p.scale)
         if self.initial.remainder not in comps:
-            problems.append(f"initial.remainder = {self.initial.remainder!r} is not a compartment; allowed: {self.compartments}")
+            problem(("initial", "remainder"), f"{self.initial.remainder!r} is not a compartment; allowed: {self.compartments}", self.initial.remainder)
         for i, v in enumerate(self.initial.set):
             if v.compartment not in comps:
-                problems.append(f"initial.set[{i}]: compartment {v.compartment!r} unknown; allowed: {self.compartments}")
+                problem(("initial", "set", i, "compartment"), f"compartment {v.compartment!r} unknown; allowed: {self.compartments}", v.compartment)
             if v.compartment == self.initial.remainder:
-                problems.append(f"initial.set[{i}]: {v.compartment!r} is the remainder compartment; it takes what is left")
+                problem(("initial", "set", i, "compartment"), f"{v.compartment!r} is the remainder compartment; it takes what is left", v.compartment)
             if v.group is not None and v.group not in groups:
-                problems.append(f"initial.set[{i}]: group {v.group!r} unknown; allowed: {groups}")
+                problem(("initial", "set", i, "group"), f"group {v.group!r} unknown; allowed: {groups}", v.group)
         flows = {f.name for f in self.flows}
-        for s in self.series:
+        for i, s in enumerate(self.series):
             if s.flow is not None and s.flow not in flows:
-                problems.append(f"series {s.name!r}: flow {s.flow!r} unknown; allowed: {sorted(flows)}")
+                problem(("series", i, "flow"), f"series {s.name!r}: flow {s.flow!r} unknown; allowed: {sorted(flows)}", s.flow)
             if s.compartment is not None and s.compartment not in comps:
-                problems.append(f"series {s.name!r}: compartment {s.compartment!r} unknown; allowed: {self.compartments}")
+                problem(("series", i, "compartment"), f"series {s.name!r}: compartment {s.compartment!r} unknown; allowed: {self.compartments}", s.compartment)
             for gname in s.groups or []:
                 if gname not in groups:
-                    problems.append(f"series {s.name!r}: group {gname!r} unknown; allowed: {groups}")
+                    problem(("series", i, "groups"), f"series {s.name!r}: group {gname!r} unknown; allowed: {groups}", gname)
             for ref, what in ((s.reporting, "reporting"), (s.noise.dispersion, "dispersion")):
                 if isinstance(ref, str) and ref not in self.parameters and ref not in self.derived:
-                    problems.append(
-                        f"series {s.name!r}: {what} = {ref!r} is not a parameter; allowed: {sorted(self.parameters)}"
-                    )
+                    loc = ("series", i, "reporting") if what == "reporting" else ("series", i, "noise", "dispersion")
+                    problem(loc, f"series {s.name!r}: {what} = {ref!r} is not a parameter; allowed: {sorted(self.parameters)}", ref)
         if problems:
-            raise ValueError("; ".join(problems))
+            raise ValidationError.from_exception_data(type(self).__name__, problems)
         return self
 
     @property

@@ -83,8 +83,10 @@ def test_unknown_compartment_in_flow(tmp_path):
     text = _edit(_example_text("sir"), 'to = "I"\nrate = "beta * foi"', 'to = "Q"\nrate = "beta * foi"')
     exc = _load_error(_write(tmp_path, "unknown_comp", text))
     msg = str(exc)
-    # Field path (flow by name, key 'to'), given value, allowed values.
-    assert "flow 'infection'" in msg and "'to'" in msg
+    # File and line of the offending key, field path, flow name, given value, allowed values.
+    line = text.splitlines().index('to = "Q"') + 1
+    assert f"unknown_comp.toml:{line}: field flows[0].to" in msg
+    assert "flow 'infection'" in msg
     assert "'Q'" in msg
     assert "allowed: ['S', 'I', 'R']" in msg
     assert len(exc.problems) == 1
