@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import logging
+import os
 import signal
 import sys
 from collections.abc import Callable, Sequence
@@ -13,6 +14,11 @@ from pathlib import Path
 import orjson
 
 __all__ = ["main", "build_parser"]
+
+# The per-particle matrix products are small; BLAS threads only add contention
+# with the service's own worker thread. Set before numpy is imported.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 
 def _load_config(path: str):
