@@ -6,7 +6,7 @@ through a ``numpy.random.Generator`` that is passed in.
 
 from ._compartmental import CompartmentalModel, ModelError
 from ._expressions import ExpressionError, compile_expression
-from ._forecast import Forecast, forecast
+from ._forecast import FORECAST_LEVELS, FirstExceedance, Forecast, forecast
 from ._filter import FilterConfig, ParticleFilter, StepResult
 from ._linear_gaussian import LocalLevelModel
 from ._model import Model
@@ -21,7 +21,9 @@ from ._weights import effective_sample_size, log_sum_exp, normalised_weights
 __all__ = [
     "CompartmentalModel",
     "ExpressionError",
+    "FORECAST_LEVELS",
     "FilterConfig",
+    "FirstExceedance",
     "Forecast",
     "forecast",
     "LocalLevelModel",

@@ -21,10 +21,9 @@ from ._observation import (
     Observation,
     ObservationError,
     _negbin_loglik,
+    _negbin_size_terms,
     binomial_loglik,
     delay_kernel,
-    negbin_loglik,
-    negbin_size_terms,
     poisson_loglik,
 )
 from ._particles import ParticleSet
@@ -53,6 +52,38 @@ class _CompiledSeries:
     dispersion: float
     dispersion_param: int | None
     weekly: bool
+
+
+def _expand(value: np.ndarray | float, shape: tuple[int, int]) -> np.ndarray:
+    """``value`` broadcast to ``shape`` (n, G) as a C-contiguous array (a copy unless it
+    already is one). An (n, 1) column is copied group by group, which is much
+    faster than a broadcasting loop whose inner dimension is G."""
+    a = np.asarray(value)
+    n, groups = shape
+    if a.shape == (n, 1) and groups > 1:
+        out = np.empty(shape, dtype=a.dtype)
+        column = a[:, 0]
+        for g in range(groups):
+            out[:, g] = column
+        return out
+    return np.ascontiguousarray(np.broadcast_to(a, shape))
+
+
+def _shift_days(history: np.ndarray) -> None:
+    """history[:, 1:] = history[:, :-1] (day 0 is left for the caller to overwrite).
+
+    On a C-contiguous array this is one overlapping 1-D copy of the flat buffer
+    (numpy copies 1-D overlapping data in place, memmove-like), shifted by one
+    day's worth of entries: every day moves to the next slot of its particle,
+    and each particle's oldest day spills into the next particle's day 0, which
+    the caller overwrites. The 2-D assignment would copy through a temporary.
+    """
+    if not history.flags.c_contiguous or history.shape[1] < 2:
+        history[:, 1:] = history[:, :-1]
+        return
+    flat = history.reshape(-1)
+    day = history[0, 0].size
+    flat[day:] = flat[:-day]
 
 
 def _solve_table(A: list[list], b: list) -> list:
@@ -84,28 +115,32 @@ def _solve_table(A: list[list], b: list) -> list:
     return x
 
 
-def _spectral_radius(K: np.ndarray) -> np.ndarray:
-    """max |eigenvalue| of each matrix in a stack (n, m, m); NaN where K is not finite."""
-    n, m = K.shape[0], K.shape[1]
+def _spectral_radius(K: list[list[np.ndarray]], n: int) -> np.ndarray:
+    """max |eigenvalue| of the m x m matrices whose entries are K[r][s] (arrays of
+    length n); NaN (or infinity) where an entry is not finite."""
+    m = len(K)
     if m == 0:
         return np.zeros(n)
     if m == 1:
-        return np.abs(K[:, 0, 0])
-    with np.errstate(invalid="ignore"):
+        return np.abs(K[0][0])
+    with np.errstate(invalid="ignore", over="ignore"):
         if m == 2:
-            a, b, c, d = K[:, 0, 0], K[:, 0, 1], K[:, 1, 0], K[:, 1, 1]
+            a, b, c, d = K[0][0], K[0][1], K[1][0], K[1][1]
             half_trace = 0.5 * (a + d)
             half_gap = 0.5 * (a - d)
             disc = half_gap * half_gap + b * c
             # Real pair: |tr/2| + sqrt(disc); complex pair: |lambda|^2 = det = (tr/2)^2 - disc.
             real = np.abs(half_trace) + np.sqrt(np.maximum(disc, 0.0))
             complex_ = np.sqrt(np.maximum(half_trace * half_trace - disc, 0.0))
-            # NaN or infinite entries give NaN or infinity here (never an exception).
             return np.where(disc >= 0, real, complex_)
+    matrix = np.empty((n, m, m))
+    for r in range(m):
+        for s in range(m):
+            matrix[:, r, s] = K[r][s]
     out = np.full(n, np.nan)
-    ok = np.isfinite(K).all(axis=(1, 2))
+    ok = np.isfinite(matrix).all(axis=(1, 2))
     if ok.any():
-        out[ok] = np.max(np.abs(np.linalg.eigvals(K[ok])), axis=1)
+        out[ok] = np.max(np.abs(np.linalg.eigvals(matrix[ok])), axis=1)
     return out
 
 
@@ -236,6 +271,11 @@ class CompartmentalModel:
         self._imported_dynamic = imported_dynamic
         self._env_compartments = [(c, name) for c, name in enumerate(self.compartments) if name in used]
         self._rate_reads = frozenset(used)
+        dynamic_reads: set[str] = set()
+        for expr, is_dynamic in zip(self._flow_rates, self._rate_is_dynamic):
+            if is_dynamic:
+                dynamic_reads |= expr.names
+        self._dynamic_reads = frozenset(dynamic_reads)
         self._full_cache: dict[int, dict[str, np.ndarray]] = {}
         self._needs_foi = "foi" in used
         nonzero = np.flatnonzero(self._infectious_w)
@@ -332,19 +372,27 @@ class CompartmentalModel:
 
     def _foi(self, counts: np.ndarray, x: np.ndarray | None = None) -> np.ndarray | float:
         """Force of infection (n, G): contact-weighted infectious fraction per group."""
-        n, g, c = counts.shape
+        return self._foi_columns([counts[:, :, c] for c in range(counts.shape[2])], x)
+
+    def _foi_columns(self, columns: list[np.ndarray], x: np.ndarray | None = None) -> np.ndarray | float:
+        """Force of infection from the compartments' (n, G) count arrays.
+
+        ``x`` optionally gives the counts as an (n, G, C) float array already.
+        """
         if self._single_infectious is not None:
-            weighted = counts[:, :, self._single_infectious].astype(float)
+            weighted = columns[self._single_infectious].astype(float)
         elif self._infectious_w.any():
+            if x is None:
+                x = np.stack(columns, axis=-1).astype(float)
+            n, g, c = x.shape
             # A 2-D matrix-vector product: the same BLAS call (and bits) as the
             # stacked (n, G, C) @ (C,) product, without its per-row overhead.
-            flat = (x if x is not None else counts.astype(float)).reshape(n * g, c)
-            weighted = (flat @ self._infectious_w).reshape(n, g)
+            weighted = (x.reshape(n * g, c) @ self._infectious_w).reshape(n, g)
         else:
             return 0.0
         # Dividing by a full (n, G) copy of the populations gives the same values
         # as broadcasting the (G,) vector, with a contiguous inner loop.
-        weighted /= self._full_constants(n)["N"]
+        weighted /= self._full_constants(weighted.shape[0])["N"]
         return weighted @ self._contact_t
 
     def _full_constants(self, n: int) -> dict[str, np.ndarray]:
@@ -361,7 +409,7 @@ class CompartmentalModel:
             for arr in found.values():
                 arr.flags.writeable = False
             if len(cache) >= 8:
-                cache.pop(next(iter(cache)))
+                cache.clear()  # a few sizes in use at once (filter, forecasts); atomic under the GIL
             cache[n] = found
         return found
 
@@ -377,8 +425,10 @@ class CompartmentalModel:
         full = self._full_constants(n)
         env: dict = {}
         for name, value in scalars.items():
-            if name in self._rate_reads and name != "t":
-                env[name] = np.ascontiguousarray(np.broadcast_to(value, shape))
+            if name in self._dynamic_reads and name != "t":
+                env[name] = _expand(value, shape)
+            elif name in self._rate_reads:
+                env[name] = value  # read once a day only: the (n, 1) column will do
         env["t"] = float(t)
         for name in self._group_values:
             env[name] = full[name]
@@ -387,29 +437,35 @@ class CompartmentalModel:
             env["imported"] = 0.0
         elif not self._imported_dynamic:
             imported = np.asarray(self._importation(scalars), dtype=float) / self._total_population
-            env["imported"] = np.ascontiguousarray(np.broadcast_to(imported, shape))
+            env["imported"] = _expand(imported, shape) if "imported" in self._dynamic_reads else imported
         return env
 
-    def _substep_env(self, day_env: dict, scalars: dict, counts: np.ndarray, t: float) -> dict:
-        """The rate environment at time t: what any rate expression may read."""
+    def _substep_env(
+        self, day_env: dict, scalars: dict, columns: list[np.ndarray], t: float, with_foi: bool = True
+    ) -> dict:
+        """The rate environment at time t: what any rate expression may read.
+
+        ``columns`` holds each compartment's (n, G) counts.
+        """
         env = dict(day_env)
         env["t"] = float(t)
         for c, name in self._env_compartments:
-            env[name] = counts[:, :, c].astype(float)
-        if self._needs_foi:
-            env["foi"] = self._foi(counts)
+            env[name] = columns[c].astype(float)
+        if self._needs_foi and with_foi:
+            env["foi"] = self._foi_columns(columns)
         if self._imported_dynamic:
             at_t = dict(scalars, t=float(t))
             imported = np.asarray(self._importation(at_t), dtype=float) / self._total_population  # type: ignore[misc]
-            env["imported"] = np.ascontiguousarray(np.broadcast_to(imported, (counts.shape[0], self.n_groups)))
+            env["imported"] = _expand(imported, (columns[0].shape[0], self.n_groups))
         return env
 
     def _rate(self, f: int, env: dict, n: int) -> np.ndarray:
         r = np.asarray(self._flow_rates[f](env), dtype=float)
-        if r.shape != (n, self.n_groups):
-            r = np.broadcast_to(r, (n, self.n_groups))
         # Negative or undefined rates (e.g. from sin or 0/0) mean "no flow".
-        return np.where(r > 0, r, 0.0)
+        clipped = np.where(r > 0, r, 0.0)
+        if clipped.shape != (n, self.n_groups):
+            clipped = _expand(clipped, (n, self.n_groups))
+        return clipped
 
     def _rates(self, env: dict, n: int) -> list[np.ndarray]:
         shape = (n, self.n_groups)
@@ -434,6 +490,7 @@ class CompartmentalModel:
             # The day's incidence is summed in a contiguous buffer and written
             # to history[:, 0] once the day is done (nothing reads it mid-day).
             incidence = np.empty((n, len(slots), self.n_groups), dtype=history.dtype)
+        columns = [counts[:, :, c] for c in range(self.n_compartments)]  # views, updated in place
         for day in range(t0, t1):
             self._drift(particles.params, rng)
             scalars = self._scalars(particles.params, day)
@@ -452,22 +509,22 @@ class CompartmentalModel:
             moves: list = [None] * n_flows
             for sub in range(self.spec.substeps_per_day):
                 t = day + sub * dt
-                env = self._substep_env(day_env, scalars, counts, t)
+                env = self._substep_env(day_env, scalars, columns, t)
                 for f, dynamic in enumerate(self._rate_is_dynamic):
                     if dynamic:
                         rates[f] = self._rate(f, env, n)
                 # Every move is drawn from the counts at the start of the sub-step.
                 for (c, flows), probs in zip(self._outflows, fixed):
                     p_leave, shares = probs if probs is not None else self._probabilities(rates, flows)
-                    self._draw(counts[:, :, c], flows, p_leave, shares, rng, moves)
+                    self._draw(columns[c], flows, p_leave, shares, rng, moves)
                 for f, (c_from, c_to) in enumerate(self._flow_ends):
-                    counts[:, :, c_from] -= moves[f]
-                    counts[:, :, c_to] += moves[f]
+                    columns[c_from] -= moves[f]
+                    columns[c_to] += moves[f]
                 if track:
                     for k, f in enumerate(slots):
                         incidence[:, k] += moves[f]
             if track:
-                history[:, 1:] = history[:, :-1]
+                _shift_days(history)
                 history[:, 0] = incidence
 
     def _probabilities(self, rates: list, flows: list[int]) -> tuple[np.ndarray, list[np.ndarray]]:
@@ -475,8 +532,7 @@ class CompartmentalModel:
         total = rates[flows[0]]
         for f in flows[1:]:
             total = total + rates[f]  # same order and bits as np.sum(list, axis=0)
-        p_leave = total * self.dt
-        np.negative(p_leave, out=p_leave)
+        p_leave = total * -self.dt  # == -(total * dt) exactly
         np.expm1(p_leave, out=p_leave)
         np.negative(p_leave, out=p_leave)
         shares = []
@@ -584,7 +640,7 @@ class CompartmentalModel:
                 key = ("param", s.dispersion_param) if s.dispersion_param is not None else ("value", s.dispersion)
                 if key not in size_terms:
                     k = self._column(particles.params, s.dispersion_param, s.dispersion)
-                    size_terms[key] = negbin_size_terms(k)
+                    size_terms[key] = _negbin_size_terms(k)
                 total += _negbin_loglik(y, mu, size_terms[key])
         return total
 
@@ -636,9 +692,15 @@ class CompartmentalModel:
             return np.zeros(n)  # F = 0
         counts = particles.states
         scalars = self._scalars(particles.params, t)
-        env = self._substep_env(self._day_env(scalars, t, n), scalars, counts, t)
+        # The slopes of infection rates are taken with foi set to 0 and 1; the force of
+        # infection itself is only needed if a rate that enters V reads it.
+        exits = [f for f, (src, _) in enumerate(self._flow_ends) if src in pos and f not in infection]
+        columns = [counts[:, :, c] for c in range(self.n_compartments)]
+        env = self._substep_env(self._day_env(scalars, t, n), scalars, columns, t, with_foi=False)
         env0 = dict(env, foi=np.zeros((n, G)), imported=0.0)
         env1 = dict(env, foi=np.ones((n, G)), imported=0.0)
+        if any("foi" in self._flow_rates[f].names for f in exits):
+            env["foi"] = self._foi(counts)
         entries = sorted({pos[self._flow_ends[f][1]] for f in entering})
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             # a[i]: (n, G) sum of slope x susceptibles over infection flows entering class entries[i].
@@ -650,9 +712,8 @@ class CompartmentalModel:
             # V of every group as an m_c x m_c table of (n, G) arrays (0.0 where no flow);
             # 1e-12 on the diagonal keeps it invertible when a class has no exit.
             V: list[list] = [[0.0] * m_c for _ in range(m_c)]
-            for f, (src, dst) in enumerate(self._flow_ends):
-                if src not in pos or f in infection:
-                    continue
+            for f in exits:
+                src, dst = self._flow_ends[f]
                 rate = self._rate(f, env, n)
                 V[pos[src]][pos[src]] = V[pos[src]][pos[src]] + rate
                 if dst in pos:
@@ -664,11 +725,8 @@ class CompartmentalModel:
             u = [np.broadcast_to(np.asarray(x, dtype=float), (n, G)) for x in u]
             coupling = self.contact / self.population[None, :]  # C[g, h] / N_h
             rows = [(g, i) for g in range(G) for i in range(len(entries))]
-            K = np.empty((n, len(rows), len(rows)))
-            for r, (g, i) in enumerate(rows):
-                for s, (h, j) in enumerate(rows):
-                    K[:, r, s] = a[i][:, g] * coupling[g, h] * u[entries[j]][:, h]
-            return _spectral_radius(K)
+            K = [[a[i][:, g] * coupling[g, h] * u[entries[j]][:, h] for h, j in rows] for g, i in rows]
+            return _spectral_radius(K, n)
 
     def describe(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
         out: dict[str, np.ndarray] = {}

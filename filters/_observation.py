@@ -51,10 +51,10 @@ def poisson_loglik(y: float, mu: np.ndarray) -> np.ndarray:
 
 def negbin_loglik(y: float, mu: np.ndarray, size: np.ndarray | float) -> np.ndarray:
     """log P(Y = y) for a negative binomial with mean mu and size k (variance mu + mu^2/k)."""
-    return _negbin_loglik(y, mu, negbin_size_terms(size))
+    return _negbin_loglik(y, mu, _negbin_size_terms(size))
 
 
-def negbin_size_terms(size: np.ndarray | float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _negbin_size_terms(size: np.ndarray | float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(k, log k, log Gamma(k)): the parts of the negative-binomial log-pmf that depend
     on the size only, so several series sharing one size compute them once."""
     k = np.asarray(size, dtype=float)

@@ -21,8 +21,9 @@ exactly the same work (same draws, same resampling decision); the median is
 reported. The step is timed without and with its summary
 (``with_summary=True`` is what the service publishes).
 
-Baselines, measured in the same process, interleaved with the update so that
-machine load hits both alike:
+Baselines, measured in the same process, interleaved with the update (a floor
+run right before every timed step, so the floor median is over twice as many
+runs) so that machine load hits both alike:
 
 * **floor**: the binomial variates of one day of the Euler-multinomial scheme
   drawn with numpy alone. The ``rng.binomial`` calls made by one real step are
@@ -41,9 +42,13 @@ summary (numpy reports its buffers to tracemalloc) above the memory traced
 before the step, divided by the number of particles; ``state_bytes_per_particle``
 is ``nbytes`` of the particle arrays per particle.
 
-Times are wall-clock (``time.perf_counter``); the thread CPU time of the same
-runs is reported beside them under ``cpu`` because it is less sensitive to
-other processes on a shared machine.
+Times are wall-clock (``time.perf_counter``) and the targets are judged on
+them; the thread CPU time of the same runs is reported beside them (``cpu``,
+and ``cpu_value`` / ``cpu_pass`` in each target) because on a shared, busy
+machine wall-clock medians of a few repeats mostly measure the other
+processes. Raise ``--repeats`` there, or run on a quiet machine.
+
+The command exits 0 whether or not targets pass: it reports, it does not gate.
 """
 
 from __future__ import annotations
@@ -95,20 +100,33 @@ NAIVE_SPEEDUP_MIN = 20.0
 
 @dataclass(frozen=True)
 class Target:
-    """A performance target checked by the benchmark (never by a unit test)."""
+    """A performance target checked by the benchmark (never by a unit test).
+
+    ``value`` is the wall-clock figure the target is judged on; ``cpu_value``,
+    when given, is the same figure from thread CPU time, reported beside it
+    because it is less disturbed by other processes on a busy machine.
+    """
 
     name: str
     value: float
     limit: float
     kind: str  # "max": value <= limit passes; "min": value >= limit passes
     note: str = ""
+    cpu_value: float | None = None
+
+    def _ok(self, value: float) -> bool:
+        return bool(value <= self.limit if self.kind == "max" else value >= self.limit)
 
     @property
     def passed(self) -> bool:
-        return bool(self.value <= self.limit if self.kind == "max" else self.value >= self.limit)
+        return self._ok(self.value)
 
     def as_dict(self) -> dict[str, Any]:
-        return {"value": self.value, self.kind: self.limit, "pass": self.passed, "note": self.note}
+        out: dict[str, Any] = {"value": self.value, self.kind: self.limit, "pass": self.passed, "note": self.note}
+        if self.cpu_value is not None:
+            out["cpu_value"] = self.cpu_value
+            out["cpu_pass"] = self._ok(self.cpu_value)
+        return out
 
 
 @dataclass
@@ -270,6 +288,12 @@ class NaiveModel:
         self.flows = [
             (self.cidx[f.source], self.cidx[f.target], compile_expression(f.rate, rate_names)) for f in spec.flows
         ]
+        # Flows out of each compartment, in spec order (the order of the sequential binomials).
+        self.outflows = [
+            (c, [f for f, (src, _, _) in enumerate(self.flows) if src == c])
+            for c in range(len(self.compartments))
+            if any(src == c for src, _, _ in self.flows)
+        ]
         flow_names = [f.name for f in spec.flows]
         observed = list(dict.fromkeys(s.flow for s in spec.series))
         self.observed = [flow_names.index(f) for f in observed]
@@ -323,10 +347,7 @@ class NaiveModel:
                         r = float(expr(genv))
                         rates.append(r if r > 0 else 0.0)
                     moved = [0] * len(self.flows)
-                    for c in range(len(self.compartments)):
-                        out = [f for f, (src, _, _) in enumerate(self.flows) if src == c]
-                        if not out:
-                            continue
+                    for c, out in self.outflows:
                         total = sum(rates[f] for f in out)
                         remaining = int(rng.binomial(state[g][c], -math.expm1(-total * self.dt)))
                         left = total
@@ -393,6 +414,19 @@ class NaiveModel:
         return np.array(states, dtype=np.int64), np.array(history, dtype=np.int64), loglik
 
 
+# --------------------------------------------------------------------- memory
+def _peak_step_bytes(work: UpdateWorkload, with_summary: bool) -> int:
+    """Peak traced memory of one step above the memory traced just before it."""
+    pf = work.filter()
+    tracemalloc.start()
+    try:
+        before = tracemalloc.get_traced_memory()[0]
+        pf.step(work.observation, with_summary=with_summary)
+        return tracemalloc.get_traced_memory()[1] - before
+    finally:
+        tracemalloc.stop()
+
+
 # --------------------------------------------------------------- the section
 def bench_update(
     particles: int = 10_000,
@@ -427,12 +461,14 @@ def bench_update(
     step_t, summ_t, floor_t = [], [], []
     result = None
     for r in range(repeats):
+        # Each update is timed right after a floor run, so load changes hit both alike.
         say(f"timing repeat {r + 1}/{repeats}")
+        floor_t.append(run_floor(2 * r))
         t, result = run_step(False)
         step_t.append(t)
+        floor_t.append(run_floor(2 * r + 1))
         t, _ = run_step(True)
         summ_t.append(t)
-        floor_t.append(run_floor(r))
 
     def med(timers: list[_Timer], attr: str) -> float:
         return _median([getattr(t, attr) for t in timers])
@@ -453,17 +489,10 @@ def bench_update(
     scale = particles / subset
     naive_s = med(naive_t, "wall") * scale
 
-    # Memory: tracemalloc peak during one step with summary, above what was traced before it.
-    pf = work.filter()
-    state_bytes = sum(a.nbytes for a in pf.particles.arrays().values())
-    tracemalloc.start()
-    try:
-        tracemalloc.reset_peak()
-        before = tracemalloc.get_traced_memory()[0]
-        pf.step(obs, with_summary=True)
-        peak = tracemalloc.get_traced_memory()[1] - before
-    finally:
-        tracemalloc.stop()
+    # Memory: tracemalloc peak during one step, above what was traced before it.
+    state_bytes = sum(a.nbytes for a in work.filter().particles.arrays().values())
+    peak = _peak_step_bytes(work, with_summary=True)
+    peak_no_summary = _peak_step_bytes(work, with_summary=False)
 
     ratio = update_s / floor_s
     ratio_summary = summary_s / floor_s
@@ -500,6 +529,7 @@ def bench_update(
         "naive_speedup": speedup,
         "naive_speedup_with_summary": naive_s / summary_s,
         "peak_bytes_per_particle": peak / particles,
+        "peak_bytes_per_particle_without_summary": peak_no_summary / particles,
         "state_bytes_per_particle": state_bytes / particles,
         "cpu": {
             "update_seconds": med(step_t, "cpu"),
@@ -516,13 +546,20 @@ def bench_update(
             "naive_seconds_subset": [t.wall for t in naive_t],
         },
     }
+    cpu = figures["cpu"]
     targets = [
-        Target("floor_ratio", ratio, FLOOR_RATIO_MAX, "max", "daily update without summary / binomial floor"),
+        Target(
+            "floor_ratio", ratio, FLOOR_RATIO_MAX, "max", "daily update without summary / binomial floor",
+            cpu["floor_ratio"],
+        ),
         Target(
             "floor_ratio_with_summary", ratio_summary, FLOOR_RATIO_MAX, "max",
-            "daily update with summary (service path) / binomial floor",
+            "daily update with summary (service path) / binomial floor", cpu["floor_ratio_with_summary"],
         ),
-        Target("naive_speedup", speedup, NAIVE_SPEEDUP_MIN, "min", "naive per-particle loop / daily update"),
+        Target(
+            "naive_speedup", speedup, NAIVE_SPEEDUP_MIN, "min", "naive per-particle loop / daily update",
+            cpu["naive_seconds"] / cpu["update_seconds"],
+        ),
     ]
     return SectionResult(figures, targets)
 
@@ -552,9 +589,13 @@ def run_bench(
     repeats: int = 5,
     sections: tuple[str, ...] = ("update",),
     progress: Callable[[str], None] | None = None,
-    **options: Any,
+    options: dict[str, dict[str, Any]] | None = None,
 ) -> dict[str, Any]:
-    """Run the named sections and return one JSON-able report."""
+    """Run the named sections and return one JSON-able report.
+
+    ``options`` maps a section name to extra keyword arguments of its function
+    (e.g. ``{"update": {"naive_particles": 50, "warmup_days": 5}}``).
+    """
     if particles < 1:
         raise ValueError(f"particles must be at least 1, got {particles}")
     if repeats < 1:
@@ -565,7 +606,8 @@ def run_bench(
     report: dict[str, Any] = {"bench_format": BENCH_FORMAT, "environment": _environment(), "sections": list(sections)}
     targets: dict[str, Any] = {}
     for name in sections:
-        result = SECTIONS[name](particles=particles, repeats=repeats, progress=progress, **options)
+        extra = (options or {}).get(name, {})
+        result = SECTIONS[name](particles=particles, repeats=repeats, progress=progress, **extra)
         if name == PRIMARY_SECTION:
             report.update(result.figures)
         else:
@@ -613,13 +655,17 @@ def format_report(report: dict[str, Any]) -> str:
         f"{cpu.get('floor_ratio_with_summary', float('nan')):16.3f}",
         f"  {'naive speed-up (no summary)':<40}{report['naive_speedup']:13.1f}",
         f"  {'peak memory per particle (step+summary)':<40}{report['peak_bytes_per_particle']:11.0f} B",
+        f"  {'peak memory per particle (step only)':<40}{report['peak_bytes_per_particle_without_summary']:11.0f} B",
         f"  {'particle state per particle':<40}{report['state_bytes_per_particle']:11.0f} B",
         "",
-        "  targets:",
+        "  targets (judged on wall-clock medians):",
     ]
     for name, t in report["targets"].items():
         bound = f"<= {t['max']}" if "max" in t else f">= {t['min']}"
-        lines.append(f"    {name:<38}{t['value']:10.3f}  {bound:<8} {'PASS' if t['pass'] else 'FAIL'}")
+        cpu_note = ""
+        if "cpu_value" in t:
+            cpu_note = f"   (thread CPU: {t['cpu_value']:.3f} {'PASS' if t['cpu_pass'] else 'FAIL'})"
+        lines.append(f"    {name:<38}{t['value']:10.3f}  {bound:<8} {'PASS' if t['pass'] else 'FAIL'}{cpu_note}")
     for name in report["sections"]:
         if name != PRIMARY_SECTION:
             lines.append(f"  section {name}: " + orjson.dumps(report[name]).decode())
