@@ -182,6 +182,13 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--json", action="store_true", help="print the figures as JSON")
     bench.add_argument("--particles", type=int, default=10_000, help="particles in the reference workload")
     bench.add_argument("--repeats", type=int, default=5, help="timed repetitions per figure (median reported)")
+    bench.add_argument(
+        "--sections",
+        default="update,service",
+        help="comma-separated workloads: update (filter step vs floor and naive loop), "
+        "service (end to end through Kafka vs the engine alone); default: update,service",
+    )
+    bench.add_argument("--kafka-bootstrap", help="service section: use this broker instead of starting a local one")
     bench.set_defaults(handler=_bench)
     return parser
 
