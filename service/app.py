@@ -14,7 +14,7 @@ from .http import HealthServer
 from .metrics import Metrics
 from .processor import Outcome, RecordProcessor
 from .streams import StreamRegistry
-from .transports.base import OutRecord, Transport
+from .transports.base import OutRecord, Record, Transport
 
 __all__ = ["Service"]
 
@@ -36,6 +36,7 @@ class Service:
         metrics: Metrics | None = None,
         today: Callable[[], dt.date] = dt.date.today,
         on_outcome: Callable[[Outcome], None] | None = None,
+        pipeline: bool = True,
     ) -> None:
         self.config = config
         self.transport = transport
@@ -44,9 +45,11 @@ class Service:
         self.registry = StreamRegistry(config, self.store)
         self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today)
         self.on_outcome = on_outcome
+        self.pipeline = pipeline
         self.ready = False
         self.http: HealthServer | None = None
         self.counts = {"applied": 0, "skipped": 0, "dead_letter": 0}
+        self._pending: tuple[Record, asyncio.Future] | None = None
 
     async def _on_assign(self, assigned: Sequence[tuple[str, int]]):
         resume = await asyncio.to_thread(self.registry.resume_offsets, list(assigned))
@@ -63,7 +66,25 @@ class Service:
         if records:
             await self.transport.publish(records)
 
+    async def _settle(self) -> None:
+        """Finish the deferred checkpoint write of the previous record, then commit it."""
+        if self._pending is None:
+            return
+        record, task = self._pending
+        self._pending = None
+        await task
+        await self.transport.commit(record)
+
     async def run(self, stop: asyncio.Event | None = None, until_exhausted: bool = False) -> dict[str, int]:
+        """Process records until ``stop`` is set (or a finite input ends).
+
+        Pipelining: a record's checkpoint is written in a worker thread while
+        the next record is validated and stepped; the record's offset is
+        committed only once its checkpoint is durable, and checkpoints are
+        written in order. Publishing record k+1 before checkpoint k is durable
+        is safe: a crash re-processes both from the older checkpoint and
+        re-publishes identical bytes.
+        """
         stop = stop or asyncio.Event()
         m = self.config.metrics
         if m.enabled:
@@ -72,29 +93,53 @@ class Service:
             log.info("metrics on http://%s:%s/metrics", m.host, self.http.port)
         self.metrics.watch_lag(self.transport.lag)
         lock = getattr(self.transport, "processing", None) or asyncio.Lock()
+        self._pending = None
+        failed = False
         try:
             # Fail fast on unusable saved state (e.g. a checkpoint of another model).
             await asyncio.to_thread(self.registry.preload)
             self._count_fallbacks()
-            await self.transport.start(on_assign=self._on_assign)
+            await self.transport.start(on_assign=self._on_assign, on_revoke=self._settle)
             self.ready = True
             while not stop.is_set():
                 record = await self.transport.receive(timeout=0.5)
                 if record is None:
+                    async with lock:
+                        await self._settle()
                     if until_exhausted and self.transport.exhausted:
                         break
                     continue
                 async with lock:
                     if not self.transport.is_current(record):
                         continue
-                    outcome = await self.processor.handle(record, self._publish)
-                await self.transport.commit(record)
+                    outcome = await self.processor.handle(record, self._publish, defer_checkpoint=True)
+                    await self._settle()
+                    if outcome.checkpoint is not None:
+                        write = self.processor.write_checkpoint(outcome.checkpoint)
+                        self._pending = (record, asyncio.ensure_future(write))
+                        if not self.pipeline:
+                            await self._settle()
+                    else:
+                        await self.transport.commit(record)
                 self.counts[outcome.status] += 1
                 if self.on_outcome is not None:
                     self.on_outcome(outcome)
+        except BaseException:
+            failed = True
+            raise
         finally:
             self.ready = False
-            await self.transport.stop()
-            if self.http is not None:
-                await self.http.stop()
+            try:
+                if self._pending is not None:
+                    if failed:
+                        # Let the write finish (it is a complete, valid state) but
+                        # do not commit: the record is re-read on restart.
+                        await asyncio.gather(self._pending[1], return_exceptions=True)
+                        self._pending = None
+                    else:
+                        await self._settle()
+            finally:
+                await self.transport.stop()
+                if self.http is not None:
+                    await self.http.stop()
         return dict(self.counts)

@@ -32,7 +32,7 @@ from schemas import (
 )
 
 from .alerts import AlertState, decide
-from .checkpoints import CheckpointStore
+from .checkpoints import Checkpoint, CheckpointInfo, CheckpointStore
 from .metrics import Metrics
 from .streams import StreamRegistry, StreamRuntime
 from .transports.base import OutRecord, Record
@@ -52,6 +52,7 @@ class Outcome:
     reason: str | None = None
     stream: str | None = None
     outputs: list[OutRecord] = field(default_factory=list)
+    checkpoint: Checkpoint | None = None  # snapshot still to be written (deferred mode only)
 
 
 class _Reject(Exception):
@@ -109,8 +110,15 @@ class RecordProcessor:
         self.config, self.registry, self.store, self.metrics, self.today = config, registry, store, metrics, today
 
     # ------------------------------------------------------------------ entry
-    async def handle(self, record: Record, publish: Callable[[list[OutRecord]], Any]) -> Outcome:
-        """Process one record; ``publish`` is awaited before the checkpoint is written."""
+    async def handle(
+        self, record: Record, publish: Callable[[list[OutRecord]], Any], defer_checkpoint: bool = False
+    ) -> Outcome:
+        """Process one record; ``publish`` is awaited before the checkpoint is written.
+
+        With ``defer_checkpoint`` the checkpoint is not written here: the
+        outcome carries a snapshot for the caller to write (and only then
+        commit), so the write can overlap the next record's step.
+        """
         try:
             message, runtime = self._validate(record)
         except _Reject as rej:
@@ -130,15 +138,22 @@ class RecordProcessor:
         started = time.perf_counter()
         await publish(outputs)
         self.metrics.publish_seconds.observe(time.perf_counter() - started)
-        try:
-            info = await asyncio.to_thread(self.store.write, runtime.to_checkpoint())
-        except Exception:
-            # Fail loudly: without a checkpoint the offset must not be committed.
-            self.metrics.checkpoint_failures.labels(runtime.id).inc()
-            raise
-        self.metrics.checkpoint_seconds.observe(info.seconds)
-        self.metrics.checkpoint_bytes.labels(runtime.id).set(info.size_bytes)
+        checkpoint = runtime.to_checkpoint()
+        if defer_checkpoint:
+            return Outcome("applied", None, runtime.id, outputs, checkpoint)
+        await self.write_checkpoint(checkpoint)
         return Outcome("applied", None, runtime.id, outputs)
+
+    async def write_checkpoint(self, checkpoint: Checkpoint) -> CheckpointInfo:
+        """Write in a worker thread; count failures and re-raise them (the offset must then not be committed)."""
+        try:
+            info = await asyncio.to_thread(self.store.write, checkpoint)
+        except Exception:
+            self.metrics.checkpoint_failures.labels(checkpoint.stream_id).inc()
+            raise
+        self.metrics.checkpoint_seconds.observe(info.seconds or 0.0)
+        self.metrics.checkpoint_bytes.labels(checkpoint.stream_id).set(info.size_bytes)
+        return info
 
     # ------------------------------------------------------------- validation
     def _validate(self, record: Record) -> tuple[ObservationMessage, StreamRuntime]:

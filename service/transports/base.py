@@ -12,7 +12,7 @@ from collections.abc import Awaitable, Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Literal
 
-__all__ = ["Record", "OutRecord", "Transport", "OutputKind", "AssignmentHook"]
+__all__ = ["Record", "OutRecord", "Transport", "OutputKind", "AssignmentHook", "RevocationHook"]
 
 OutputKind = Literal["estimates", "alerts", "dead_letters"]
 
@@ -41,13 +41,17 @@ class OutRecord:
 # start reading each one (offset of the next record), or omits it to use the
 # transport's default (committed offset, else the beginning).
 AssignmentHook = Callable[[Sequence[tuple[str, int]]], Awaitable[Mapping[tuple[str, int], int]]]
+RevocationHook = Callable[[], Awaitable[None]]
 
 
 class Transport:
     """Base class: receive / publish / commit, usable with ``async with``."""
 
-    async def start(self, on_assign: AssignmentHook | None = None) -> None:
-        """Connect. ``on_assign`` is awaited whenever partitions are assigned."""
+    async def start(
+        self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None
+    ) -> None:
+        """Connect. ``on_assign`` is awaited whenever partitions are assigned;
+        ``on_revoke`` before partitions are taken away (to finish pending work)."""
 
     async def stop(self) -> None:
         """Flush and disconnect."""

@@ -19,7 +19,7 @@ from typing import BinaryIO
 import orjson
 
 from ..errors import TransportError
-from .base import AssignmentHook, OutRecord, Record, Transport
+from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
 __all__ = ["FileTransport", "OUTPUT_FILES"]
 
@@ -50,7 +50,7 @@ class FileTransport(Transport):
         except (orjson.JSONDecodeError, ValueError, TypeError) as exc:
             raise TransportError(f"commit file {path} is unreadable: {exc}") from None
 
-    async def start(self, on_assign: AssignmentHook | None = None) -> None:
+    async def start(self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None) -> None:
         try:
             self._in = open(self.input_path, "rb") if self.input_path else sys.stdin.buffer
         except OSError as exc:

@@ -21,7 +21,7 @@ from aiokafka import errors as kafka_errors
 from schemas import KafkaSettings
 
 from ..errors import TransportAuthError, TransportError
-from .base import AssignmentHook, OutRecord, Record, Transport
+from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
 __all__ = ["KafkaTransport", "translate_error"]
 
@@ -54,6 +54,8 @@ class _Rebalance(ConsumerRebalanceListener):
 
     async def on_partitions_revoked(self, revoked: Sequence[TopicPartition]) -> None:
         async with self.transport.processing:
+            if self.transport.on_revoke is not None:
+                await self.transport.on_revoke()
             log.info("partitions revoked: %s", sorted((tp.topic, tp.partition) for tp in revoked))
 
     async def on_partitions_assigned(self, assigned: Sequence[TopicPartition]) -> None:
@@ -81,6 +83,7 @@ class KafkaTransport(Transport):
         self.consumer: AIOKafkaConsumer | None = None
         self.producer: AIOKafkaProducer | None = None
         self.on_assign: AssignmentHook | None = None
+        self.on_revoke: RevocationHook | None = None
         self.processing = asyncio.Lock()
         self._buffer: list[Record] = []
         self.generation = 0  # bumped at every assignment
@@ -103,9 +106,10 @@ class KafkaTransport(Transport):
             opts["sasl_plain_password"] = s.sasl_password.get_secret_value() if s.sasl_password else None
         return opts
 
-    async def start(self, on_assign: AssignmentHook | None = None) -> None:
+    async def start(self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None) -> None:
         s = self.settings
         self.on_assign = on_assign
+        self.on_revoke = on_revoke
         security = self._security()
         self.producer = AIOKafkaProducer(
             bootstrap_servers=s.bootstrap_servers,

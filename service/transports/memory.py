@@ -5,7 +5,7 @@ from __future__ import annotations
 import asyncio
 from collections.abc import Sequence
 
-from .base import AssignmentHook, OutRecord, Record, Transport
+from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
 __all__ = ["MemoryTransport"]
 
@@ -25,7 +25,7 @@ class MemoryTransport(Transport):
         self.committed: int | None = None
         self.published: dict[str, list[OutRecord]] = {"estimates": [], "alerts": [], "dead_letters": []}
 
-    async def start(self, on_assign: AssignmentHook | None = None) -> None:
+    async def start(self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None) -> None:
         if on_assign is not None:
             seek = await on_assign([(self.topic, 0)])
             start = seek.get((self.topic, 0))

@@ -97,7 +97,10 @@ class Harness:
     """One Service over a MemoryTransport, with a per-record trace.
 
     After each record (after its commit) the trace holds the outcome, the
-    committed offset, a snapshot of the cloud and the checkpoint files.
+    committed offset, a snapshot of the cloud and the checkpoint files. The
+    service runs unpipelined here (``pipeline=False``) so that every record's
+    checkpoint and commit are done when the trace is taken; the pipelined
+    path is covered by the restart tests and the Kafka crash tests.
     """
 
     def __init__(self, tmp_path: Path, records: list[bytes], **config: Any) -> None:
@@ -108,7 +111,12 @@ class Harness:
         self.metrics = Metrics(registry=self.registry)
         self.trace: list[dict[str, Any]] = []
         self.service = Service(
-            self.config, self.transport, metrics=self.metrics, today=lambda: TODAY, on_outcome=self._record
+            self.config,
+            self.transport,
+            metrics=self.metrics,
+            today=lambda: TODAY,
+            on_outcome=self._record,
+            pipeline=False,
         )
 
     def _record(self, outcome: Outcome) -> None:

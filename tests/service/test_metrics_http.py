@@ -91,7 +91,7 @@ def test_service_serves_metrics_and_readiness_while_running(kit, tmp_path):
             super().__init__(inputs)
             self.gate = asyncio.Event()
 
-        async def start(self, on_assign=None):
+        async def start(self, on_assign=None, on_revoke=None):
             await self.gate.wait()
             await super().start(on_assign)
 

@@ -32,7 +32,7 @@ class RecordingTransport(MemoryTransport):
         self.started_at: int | None = None
         self.delivered: list[int] = []
 
-    async def start(self, on_assign=None) -> None:
+    async def start(self, on_assign=None, on_revoke=None) -> None:
         await super().start(on_assign)
         self.started_at = self.position
 
@@ -43,11 +43,15 @@ class RecordingTransport(MemoryTransport):
         return record
 
 
-def _service(kit, checkpoint_dir: Path, records, **config):
+def _service(kit, checkpoint_dir: Path, records, pipeline: bool = True, **config):
     transport = RecordingTransport(records)
     registry = CollectorRegistry()
     service = Service(
-        kit.make_config(checkpoint_dir, **config), transport, metrics=Metrics(registry=registry), today=lambda: kit.TODAY
+        kit.make_config(checkpoint_dir, **config),
+        transport,
+        metrics=Metrics(registry=registry),
+        today=lambda: kit.TODAY,
+        pipeline=pipeline,
     )
     return service, transport, registry
 
@@ -98,7 +102,8 @@ def test_offset_already_applied_is_skipped(tmp_path, kit):
     # offset 1 again (a re-delivery): by period alone it would be "late"
     redelivered = Record(value=good[1], topic="input", partition=0, offset=1)
     records = [Record(value=v, topic="input", partition=0, offset=i) for i, v in enumerate(good)] + [redelivered]
-    service, transport, registry = _service(kit, tmp_path / "ck", records)
+    # unpipelined, so the third record's checkpoint is on disk when its outcome is reported
+    service, transport, registry = _service(kit, tmp_path / "ck", records, pipeline=False)
     before_files = None
     seen = []
 
@@ -125,7 +130,7 @@ def test_redelivery_after_restart_from_an_older_offset_is_skipped(tmp_path, kit)
     # a transport that ignores the assignment hook and starts from offset 2
     again = RecordingTransport(records)
 
-    async def start(on_assign=None):
+    async def start(on_assign=None, on_revoke=None):
         again.position = again.started_at = 2
 
     again.start = start
