@@ -86,6 +86,11 @@ class ServiceSettings(_Section):
     max_message_bytes: int = Field(default=65536, ge=256, le=16 * 1024 * 1024)
     max_future_days: int = Field(default=2, ge=0, le=366)
     max_gap_days: int = Field(default=120, ge=1, le=3660)
+    checkpoint_store: Literal["local", "kafka"] = Field(
+        default="local",
+        description="local: checkpoint_dir on disk; kafka: a compacted topic every replica can read",
+    )
+    checkpoint_topic: str = "casecloud.checkpoints"
 
 
 class MetricsSettings(_Section):
