@@ -19,6 +19,7 @@ from ._messages import (
     AlertMessage,
     DeadLetter,
     EstimateMessage,
+    Exceedance,
     ObservationMessage,
     SourcePosition,
     json_schema,
@@ -48,6 +49,20 @@ from ._model_spec import (
     EXAMPLE_MODELS,
     example_model_path,
 )
+from ._scenario import (
+    BASELINE,
+    EXAMPLE_SCENARIOS,
+    ContactChange,
+    Intervention,
+    RateChange,
+    Scenario,
+    ScenarioFile,
+    ScenarioThreshold,
+    Vaccination,
+    example_scenario_path,
+    load_scenario_file,
+    scenario_problems,
+)
 
 __all__ = [
     "ENV_OVERRIDES",
@@ -64,6 +79,7 @@ __all__ = [
     "AlertMessage",
     "DeadLetter",
     "EstimateMessage",
+    "Exceedance",
     "ObservationMessage",
     "SourcePosition",
     "json_schema",
@@ -92,4 +108,16 @@ __all__ = [
     "example_model_path",
     "load_toml_model",
     "validate_document",
+    "BASELINE",
+    "EXAMPLE_SCENARIOS",
+    "ContactChange",
+    "Intervention",
+    "RateChange",
+    "Scenario",
+    "ScenarioFile",
+    "ScenarioThreshold",
+    "Vaccination",
+    "example_scenario_path",
+    "load_scenario_file",
+    "scenario_problems",
 ]

@@ -76,6 +76,8 @@ class StreamConfig(_Section):
     scheme: Literal["systematic", "stratified", "residual", "multinomial"] = "systematic"
     liu_west_discount: float | None = Field(default=0.99, gt=0, lt=1)
     forecast_trajectories: int = Field(default=500, ge=10, le=100_000)
+    forecast_horizon_days: int = Field(default=28, ge=1, le=90)
+    publish_forecast: bool = Field(default=True, description="include the forecast block in every estimate")
     alerts: list[AlertRule] = Field(default_factory=list)
 
 
@@ -99,6 +101,13 @@ class MetricsSettings(_Section):
     port: int = Field(default=9464, ge=0, le=65535)
 
 
+def _given(value: object) -> bool:
+    """Set and not empty (an empty environment variable counts as unset)."""
+    if isinstance(value, SecretStr):
+        value = value.get_secret_value()
+    return value is not None and value != ""
+
+
 class KafkaSettings(_Section):
     bootstrap_servers: str = "127.0.0.1:9092"
     group_id: str = "casecloud"
@@ -112,7 +121,41 @@ class KafkaSettings(_Section):
     sasl_mechanism: Literal["PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512"] | None = None
     sasl_username: str | None = None
     sasl_password: SecretStr | None = None
-    ssl_cafile: Path | None = None
+    ssl_cafile: Path | None = Field(default=None, description="PEM CA bundle that signed the brokers' certificates (default: the system's)")
+    ssl_certfile: Path | None = Field(default=None, description="PEM client certificate (chain) for brokers that require TLS client authentication")
+    ssl_keyfile: Path | None = Field(default=None, description="PEM private key of ssl_certfile (omit if the certificate file holds the key)")
+
+    @model_validator(mode="after")
+    def _security(self) -> "KafkaSettings":
+        # Never echo the password here: the loader prints these messages.
+        protocol = self.security_protocol
+        if protocol.startswith("SASL"):
+            missing = [
+                f"{name} (or ${var})"
+                for name, var, value in (
+                    ("sasl_username", "CASECLOUD_KAFKA_USERNAME", self.sasl_username),
+                    ("sasl_password", "CASECLOUD_KAFKA_PASSWORD", self.sasl_password),
+                )
+                if not _given(value)
+            ]
+            if missing:
+                raise ValueError(f"security_protocol {protocol} needs {' and '.join(missing)}")
+        else:
+            given = [n for n in ("sasl_mechanism", "sasl_username", "sasl_password") if _given(getattr(self, n))]
+            if given:
+                raise ValueError(
+                    f"{', '.join(given)} given but security_protocol is {protocol}, so they would never be sent; "
+                    f"allowed: SASL_PLAINTEXT or SASL_SSL with SASL settings"
+                )
+        if protocol not in ("SSL", "SASL_SSL"):
+            given = [n for n in ("ssl_cafile", "ssl_certfile", "ssl_keyfile") if getattr(self, n) is not None]
+            if given:
+                raise ValueError(
+                    f"{', '.join(given)} given but security_protocol is {protocol} (no TLS); allowed: SSL or SASL_SSL"
+                )
+        if self.ssl_keyfile is not None and self.ssl_certfile is None:
+            raise ValueError("ssl_keyfile given without ssl_certfile; the key belongs to a client certificate")
+        return self
 
 
 class FileSettings(_Section):
@@ -154,7 +197,7 @@ def load_deployment_config(
     """Read the TOML config, apply environment overrides, validate.
 
     Relative paths in the file (checkpoint_dir, file input/output, stream
-    models) are resolved against the config file's directory.
+    models, Kafka TLS files) are resolved against the config file's directory.
     """
     path = Path(path)
     env = os.environ if environ is None else environ
@@ -166,7 +209,14 @@ def load_deployment_config(
     except tomllib.TOMLDecodeError as exc:
         raise SpecError(f"{path}: not valid TOML: {exc}") from None
     base = path.parent
-    for section, key in (("service", "checkpoint_dir"), ("file", "input"), ("file", "output_dir")):
+    for section, key in (
+        ("service", "checkpoint_dir"),
+        ("file", "input"),
+        ("file", "output_dir"),
+        ("kafka", "ssl_cafile"),
+        ("kafka", "ssl_certfile"),
+        ("kafka", "ssl_keyfile"),
+    ):
         table = data.get(section)
         value = table.get(key) if isinstance(table, dict) else None  # a non-table is reported by validation
         if isinstance(value, str) and value and not Path(value).is_absolute():

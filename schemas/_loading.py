@@ -20,13 +20,17 @@ def _line_of(text: str, loc: tuple[Any, ...]) -> int | None:
     """Best-effort line number of the field at ``loc`` in TOML text.
 
     Follows ``[[table]]`` arrays by index (``flows[2].rate`` looks after the
-    third ``[[flows]]``), then finds the last named key from there.
+    third ``[[flows]]``), then finds the last named key from there. Nested
+    arrays are counted from their parent's header on
+    (``scenarios[1].interventions[0]`` is the first ``[[scenarios.interventions]]``
+    after the second ``[[scenarios]]``).
     """
     parts = [k for k in loc if not (isinstance(k, str) and k.startswith(("function-", "tagged-")))]
     position = 0
     for key, nxt in zip(parts, parts[1:]):
         if isinstance(key, str) and isinstance(nxt, int):
-            headers = list(re.finditer(rf"^[ \t]*\[\[[ \t]*([\w.-]*\.)?{re.escape(key)}[ \t]*\]\]", text, re.M))
+            header = re.compile(rf"^[ \t]*\[\[[ \t]*([\w.-]*\.)?{re.escape(key)}[ \t]*\]\]", re.M)
+            headers = list(header.finditer(text, position))
             if len(headers) > nxt:
                 position = headers[nxt].start()
     for key in reversed([k for k in parts if isinstance(k, str)]):

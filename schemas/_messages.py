@@ -16,6 +16,7 @@ __all__ = [
     "StreamId",
     "ObservationMessage",
     "QuantitySummary",
+    "Exceedance",
     "EstimateMessage",
     "AlertMessage",
     "DeadLetter",
@@ -88,6 +89,18 @@ class SourcePosition(_Message):
     offset: int
 
 
+class Exceedance(_Message):
+    """One alert rule's look ahead from the current cloud."""
+
+    series: str
+    threshold: float
+    horizon_days: int
+    probability: float = Field(description="P(reported count > threshold on at least one of the next horizon_days days)")
+    expected_first_day: float | None = Field(
+        description="mean first day of exceedance (1 = tomorrow) among the simulated futures that exceed; null if none do"
+    )
+
+
 class EstimateMessage(_Message):
     """What a stream's cloud believes after assimilating one period."""
 
@@ -104,9 +117,14 @@ class EstimateMessage(_Message):
     collapsed: bool
     log_evidence_increment: float | None
     quantities: dict[str, QuantitySummary]
-    exceedance: dict[str, float] = Field(
-        default_factory=dict,
-        description="rule name -> probability that the rule's series exceeds its threshold within its horizon",
+    exceedance: dict[str, Exceedance] = Field(default_factory=dict, description="per alert rule name")
+    growth_probability: float | None = Field(
+        default=None,
+        description="P(latent new infections over days 8-14 ahead exceed those over days 1-7 ahead)",
+    )
+    forecast: dict[str, Any] | None = Field(
+        default=None,
+        description="per series and latent quantity: mean and quantiles per day ahead, weekly totals, peak timing and size",
     )
     source: SourcePosition
     caution: str = (

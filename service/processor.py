@@ -26,6 +26,7 @@ from schemas import (
     DeadLetter,
     DeploymentConfig,
     EstimateMessage,
+    Exceedance,
     ObservationMessage,
     SourcePosition,
     parse_period,
@@ -219,7 +220,7 @@ class RecordProcessor:
     # ------------------------------------------------------------------ apply
     async def _apply(self, runtime: StreamRuntime, message: ObservationMessage, day: int, record: Record) -> list[OutRecord]:
         started = time.perf_counter()
-        result, exceedance, latest = await asyncio.to_thread(self._step, runtime, message, day)
+        result, exceedance, latest, block, growth = await asyncio.to_thread(self._step, runtime, message, day)
         self.metrics.step_seconds.labels(runtime.id).observe(time.perf_counter() - started)
         runtime.last_day, runtime.last_period = day, message.period
         runtime.positions[f"{record.topic}|{record.partition}"] = record.offset
@@ -251,6 +252,8 @@ class RecordProcessor:
             log_evidence_increment=result.log_evidence_increment,
             quantities=summary.as_dict(),
             exceedance=exceedance,
+            growth_probability=growth,
+            forecast=block,
             source=SourcePosition(topic=record.topic, partition=record.partition, offset=record.offset),
         )
         key = sid.encode()
@@ -259,7 +262,7 @@ class RecordProcessor:
         ]
         for rule in runtime.config.alerts:
             state = runtime.alerts.get(rule.name, AlertState())
-            decision = decide(rule, state, exceedance[rule.name], sid, message.period)
+            decision = decide(rule, state, exceedance[rule.name].probability, sid, message.period)
             runtime.alerts[rule.name] = decision.state
             if decision.status is None:
                 continue
@@ -274,7 +277,7 @@ class RecordProcessor:
                 series=rule.series,
                 threshold=rule.threshold,
                 horizon_days=rule.horizon_days,
-                probability=exceedance[rule.name],
+                probability=exceedance[rule.name].probability,
                 raise_level=rule.raise_level,
                 clear_level=rule.clear_level,
                 latest_mean=latest.get(rule.series),
@@ -285,17 +288,25 @@ class RecordProcessor:
 
     def _step(self, runtime: StreamRuntime, message: ObservationMessage, day: int):
         """CPU work (runs in a worker thread): step, summarise, forecast."""
-        pf = runtime.filter
+        pf, cfg = runtime.filter, runtime.config
         result = pf.step(Observation(day, dict(message.counts)))
-        exceedance: dict[str, float] = {}
-        latest: dict[str, float] = {}
         weights = pf.weights()
-        for s in runtime.model.series:
-            latest[s.name] = float(weights @ runtime.model.expected(pf.particles, s.name))
-        rules = runtime.config.alerts
-        if rules:
-            horizon = max(r.horizon_days for r in rules)
-            fc = forecast(runtime.model, pf.particles, weights, pf.time, horizon, runtime.config.forecast_trajectories, pf.rng)
-            for r in rules:
-                exceedance[r.name] = fc.exceedance(r.series, r.threshold, r.horizon_days)
-        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}
+        latest = {s.name: float(weights @ runtime.model.expected(pf.particles, s.name)) for s in runtime.model.series}
+        exceedance: dict[str, Exceedance] = {}
+        block = growth = None
+        if cfg.alerts or cfg.publish_forecast:
+            horizon = max([cfg.forecast_horizon_days, *(r.horizon_days for r in cfg.alerts)])
+            fc = forecast(runtime.model, pf.particles, weights, pf.time, horizon, cfg.forecast_trajectories, pf.rng)
+            for r in cfg.alerts:
+                first = fc.first_exceedance(r.series, r.threshold, r.horizon_days)
+                exceedance[r.name] = Exceedance(
+                    series=r.series,
+                    threshold=r.threshold,
+                    horizon_days=r.horizon_days,
+                    probability=first.probability,
+                    expected_first_day=first.mean_day,
+                )
+            if cfg.publish_forecast:
+                block = fc.to_message_block()
+                growth = block.get("growth_probability")
+        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}, block, growth
