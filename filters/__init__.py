@@ -8,11 +8,22 @@ from ._compartmental import CompartmentalModel, ModelError
 from ._expressions import ExpressionError, compile_expression
 from ._forecast import FORECAST_LEVELS, FirstExceedance, Forecast, forecast
 from ._filter import FilterConfig, ParticleFilter, StepResult
+from ._interventions import DayEffects, Effects, InterventionError, compile_interventions
 from ._linear_gaussian import LocalLevelModel
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._particles import ParticleSet
 from ._resampling import RESAMPLERS, resample
+from ._scenario import (
+    CAUTION,
+    SCENARIO_LEVELS,
+    Interval,
+    Probability,
+    ScenarioOutcome,
+    ScenarioReport,
+    ThresholdCheck,
+    run_scenarios,
+)
 from ._rng import generator_state, restore_generator, stream_generator
 from ._simulate import SimulatedSeason, simulate_season
 from ._summary import Summary, summarise, weighted_quantiles
@@ -20,6 +31,10 @@ from ._weights import effective_sample_size, log_sum_exp, normalised_weights
 
 __all__ = [
     "CompartmentalModel",
+    "DayEffects",
+    "Effects",
+    "InterventionError",
+    "compile_interventions",
     "ExpressionError",
     "FORECAST_LEVELS",
     "FilterConfig",
@@ -34,6 +49,14 @@ __all__ = [
     "ParticleFilter",
     "ParticleSet",
     "RESAMPLERS",
+    "CAUTION",
+    "Interval",
+    "Probability",
+    "SCENARIO_LEVELS",
+    "ScenarioOutcome",
+    "ScenarioReport",
+    "ThresholdCheck",
+    "run_scenarios",
     "SimulatedSeason",
     "StepResult",
     "Summary",

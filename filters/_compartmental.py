@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -261,6 +262,15 @@ class CompartmentalModel:
         evaluated once per day instead of once per sub-step, and only the
         compartments that some rate expression reads are converted to float.
         Values are the same as evaluating everything every sub-step.
+
+        Interventions (``advance(..., effects=...)``) make the rates they touch
+        time-dependent: a factor applies on the days of its window only. Their
+        windows are whole days, so a factor is constant within each day and
+        changes only at day boundaries; every rate (touched or not) is
+        evaluated afresh each day and nothing is carried across days, so the
+        once-a-day evaluation stays exact on effect days too, with the day's
+        factor applied wherever the rate is evaluated. (A window starting
+        mid-day would move the rates it touches to the per-sub-step set.)
         """
         imported_dynamic = self._importation is not None and "t" in self._importation.names
         dynamic = set(self.compartments) | {"t", "foi"} | ({"imported"} if imported_dynamic else set())
@@ -374,10 +384,14 @@ class CompartmentalModel:
         """Force of infection (n, G): contact-weighted infectious fraction per group."""
         return self._foi_columns([counts[:, :, c] for c in range(counts.shape[2])], x)
 
-    def _foi_columns(self, columns: list[np.ndarray], x: np.ndarray | None = None) -> np.ndarray | float:
+    def _foi_columns(
+        self, columns: list[np.ndarray], x: np.ndarray | None = None, contact_t: np.ndarray | None = None
+    ) -> np.ndarray | float:
         """Force of infection from the compartments' (n, G) count arrays.
 
-        ``x`` optionally gives the counts as an (n, G, C) float array already.
+        ``x`` optionally gives the counts as an (n, G, C) float array already;
+        ``contact_t`` a transposed contact matrix to use instead of the model's
+        (an intervention in force).
         """
         if self._single_infectious is not None:
             weighted = columns[self._single_infectious].astype(float)
@@ -393,7 +407,7 @@ class CompartmentalModel:
         # Dividing by a full (n, G) copy of the populations gives the same values
         # as broadcasting the (G,) vector, with a contiguous inner loop.
         weighted /= self._full_constants(weighted.shape[0])["N"]
-        return weighted @ self._contact_t
+        return weighted @ (self._contact_t if contact_t is None else contact_t)
 
     def _full_constants(self, n: int) -> dict[str, np.ndarray]:
         """Group values and populations as read-only (n, G) arrays (cached per n)."""
@@ -441,18 +455,25 @@ class CompartmentalModel:
         return env
 
     def _substep_env(
-        self, day_env: dict, scalars: dict, columns: list[np.ndarray], t: float, with_foi: bool = True
+        self,
+        day_env: dict,
+        scalars: dict,
+        columns: list[np.ndarray],
+        t: float,
+        with_foi: bool = True,
+        contact_t: np.ndarray | None = None,
     ) -> dict:
         """The rate environment at time t: what any rate expression may read.
 
-        ``columns`` holds each compartment's (n, G) counts.
+        ``columns`` holds each compartment's (n, G) counts; ``contact_t`` an
+        intervention's transposed contact matrix (None: the model's).
         """
         env = dict(day_env)
         env["t"] = float(t)
         for c, name in self._env_compartments:
             env[name] = columns[c].astype(float)
         if self._needs_foi and with_foi:
-            env["foi"] = self._foi_columns(columns)
+            env["foi"] = self._foi_columns(columns, contact_t=contact_t)
         if self._imported_dynamic:
             at_t = dict(scalars, t=float(t))
             imported = np.asarray(self._importation(at_t), dtype=float) / self._total_population  # type: ignore[misc]
@@ -476,10 +497,21 @@ class CompartmentalModel:
             out.append(np.where(r > 0, r, 0.0))
         return out
 
-    def advance(self, particles: ParticleSet, t0: int, t1: int, rng: np.random.Generator) -> None:
-        """Simulate every particle from day t0 to day t1 (in place)."""
+    def advance(
+        self, particles: ParticleSet, t0: int, t1: int, rng: np.random.Generator, effects: Any = None
+    ) -> None:
+        """Simulate every particle from day t0 to day t1 (in place).
+
+        ``effects``: interventions compiled for this model
+        (:func:`filters.compile_interventions`), consulted once per day. On
+        days when nothing is in force, and always with ``effects=None``, the
+        day runs exactly the code (and draws exactly the random numbers) it
+        runs without interventions.
+        """
         if t1 < t0:
             raise ValueError(f"cannot advance backwards from day {t0} to day {t1}")
+        if effects is not None:
+            effects.check_model(self)
         counts, history = particles.states, particles.history
         n = counts.shape[0]
         slots = self._observed_flows
@@ -497,6 +529,13 @@ class CompartmentalModel:
             day_env = self._day_env(scalars, day, n)
             if track:
                 incidence.fill(0)
+            today = None if effects is None else effects.on_day(day)
+            if today is not None:
+                self._day_with_effects(today, day, day_env, scalars, columns, n, rng, incidence if track else None)
+                if track:
+                    _shift_days(history)
+                    history[:, 0] = incidence
+                continue
             # Rates, leave probabilities and shares that are fixed for the day.
             rates: list = [None] * n_flows
             for f, dynamic in enumerate(self._rate_is_dynamic):
@@ -526,6 +565,131 @@ class CompartmentalModel:
             if track:
                 _shift_days(history)
                 history[:, 0] = incidence
+
+    def _day_with_effects(
+        self,
+        today: Any,
+        day: int,
+        day_env: dict,
+        scalars: dict,
+        columns: list[np.ndarray],
+        n: int,
+        rng: np.random.Generator,
+        incidence: np.ndarray | None,
+    ) -> None:
+        """One day's sub-steps with interventions in force (``today``: a DayEffects).
+
+        The same scheme as the ordinary day, with three changes: rates of flows
+        in ``today.rate_factors`` are multiplied by their per-group factors
+        wherever they are evaluated; the force of infection reads
+        ``today.contact_t``; and each source in ``today.extra`` gets extra
+        competing outflows (vaccination), included in its leave probability.
+
+        Random numbers: a source's leave draw and the split draws of all its
+        model flows but the last are made where the ordinary day makes them.
+        The splits that the extra outflows add (last model flow versus the
+        extra ones, then among the extra ones) are drawn after every ordinary
+        draw of the sub-step, so the other compartments' draws keep their
+        places in the stream; scenario runs that share random numbers stay
+        aligned as far as the changed probabilities allow.
+        """
+        dt = self.dt
+        n_flows = len(self._flow_rates)
+        factors = today.rate_factors
+        shape = (n, self.n_groups)
+        extra = {c: [(target, _expand(rate, shape)) for target, rate in xs] for c, xs in today.extra.items()}
+        rates: list = [None] * n_flows
+        for f, dynamic in enumerate(self._rate_is_dynamic):
+            if not dynamic:
+                rates[f] = self._rate(f, day_env, n)
+                if f in factors:
+                    rates[f] = rates[f] * factors[f]
+        sources = {c for c, _ in self._outflows}
+        # Sources with extra outflows but no flow of their own: drawn wholly after the ordinary draws.
+        extra_only = [(c, xs) for c, xs in extra.items() if c not in sources]
+        fixed = [
+            None if dynamic else self._probabilities_with_extra(rates, flows, extra.get(c))
+            for (c, flows), dynamic in zip(self._outflows, self._source_is_dynamic)
+        ]
+        fixed_extra_only = [self._probabilities_with_extra(rates, [], xs) for _, xs in extra_only]
+        moves: list = [None] * n_flows
+        for sub in range(self.spec.substeps_per_day):
+            t = day + sub * dt
+            env = self._substep_env(day_env, scalars, columns, t, contact_t=today.contact_t)
+            for f, dynamic in enumerate(self._rate_is_dynamic):
+                if dynamic:
+                    rates[f] = self._rate(f, env, n)
+                    if f in factors:
+                        rates[f] = rates[f] * factors[f]
+            deferred: list = []
+            for (c, flows), probs in zip(self._outflows, fixed):
+                xs = extra.get(c)
+                p_leave, shares, tail = probs if probs is not None else self._probabilities_with_extra(rates, flows, xs)
+                if xs is None:
+                    self._draw(columns[c], flows, p_leave, shares, rng, moves)
+                    continue
+                remaining = rng.binomial(columns[c], p_leave)
+                for f, share in zip(flows[:-1], shares):
+                    moved = rng.binomial(remaining, share)
+                    moves[f] = moved
+                    remaining = remaining - moved
+                deferred.append((c, flows[-1], xs, remaining, tail))
+            for (c, xs), (p_leave, _, tail) in zip(extra_only, fixed_extra_only):
+                deferred.append((c, None, xs, rng.binomial(columns[c], p_leave), tail))
+            extra_moves: list = []  # (source, target, moved)
+            for c, last, xs, remaining, tail in deferred:
+                # What is left splits among the last model flow (if any), then the extra outflows.
+                ends = ([] if last is None else [(None, last)]) + [(target, None) for target, _ in xs]
+                for k, (target, flow) in enumerate(ends):
+                    if k < len(tail):
+                        moved = rng.binomial(remaining, tail[k])
+                        remaining = remaining - moved
+                    else:
+                        moved = remaining  # the last destination takes the rest
+                    if flow is not None:
+                        moves[flow] = moved
+                    else:
+                        extra_moves.append((c, target, moved))
+            for f, (c_from, c_to) in enumerate(self._flow_ends):
+                columns[c_from] -= moves[f]
+                columns[c_to] += moves[f]
+            for c_from, c_to, moved in extra_moves:
+                columns[c_from] -= moved
+                columns[c_to] += moved
+            if incidence is not None:
+                for k, f in enumerate(self._observed_flows):
+                    incidence[:, k] += moves[f]
+
+    def _probabilities_with_extra(
+        self, rates: list, flows: list[int], extra: list | None
+    ) -> tuple[np.ndarray, list[np.ndarray], list[np.ndarray]]:
+        """Leave probability and split shares of a source with extra outflows.
+
+        Returns (p_leave, shares, tail): ``shares`` split the leavers among
+        ``flows[:-1]`` in order, as in :meth:`_probabilities`; ``tail`` then
+        splits what is left among ``flows[-1]`` and the extra outflows (all but
+        the last get a share; the last takes the rest). With ``extra`` None this
+        is :meth:`_probabilities` with an empty tail.
+        """
+        if extra is None:
+            p_leave, shares = self._probabilities(rates, flows)
+            return p_leave, shares, []
+        parts = [rates[f] for f in flows] + [rate for _, rate in extra]
+        total = parts[0]
+        for r in parts[1:]:
+            total = total + r
+        p_leave = total * -self.dt
+        np.expm1(p_leave, out=p_leave)
+        np.negative(p_leave, out=p_leave)
+        split: list[np.ndarray] = []
+        rate_left = total
+        for r in parts[:-1]:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                share = np.where(rate_left > 0, r / rate_left, 0.0)
+            split.append(np.clip(share, 0.0, 1.0))
+            rate_left = rate_left - r
+        head = max(len(flows) - 1, 0)
+        return p_leave, split[:head], split[head:]
 
     def _probabilities(self, rates: list, flows: list[int]) -> tuple[np.ndarray, list[np.ndarray]]:
         """Leave probability 1 - exp(-sum(rates) dt) and the sequential split shares."""

@@ -38,8 +38,9 @@ Latent quantities (per trajectory and day)
     at the end of the day.
 ``R_eff``
     ``model.reproduction_number`` at the end of the day (next-generation
-    matrix at the current susceptibles; about 3% of the cost of a day's
-    simulation for ``seir_two_band``, so it is taken every day).
+    matrix at the current susceptibles; for ``seir_two_band`` about 0.5 ms
+    per day for 2000 trajectories, some 5% of a forecast's time, so it is
+    taken every day).
 
 Names: reported series are addressed by their series name; latent quantities
 as ``"latent.infections"``, ``"latent.susceptibles"`` and ``"latent.R_eff"``
@@ -92,7 +93,7 @@ def _read_only(a: np.ndarray) -> np.ndarray:
     return a
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Forecast:
     """Simulated futures: every row is one equally weighted trajectory.
 
@@ -114,11 +115,11 @@ class Forecast:
     """
 
     start: int
-    reported: dict[str, np.ndarray]
-    expected: dict[str, np.ndarray]
-    latent: dict[str, np.ndarray] = field(default_factory=dict)
+    reported: dict[str, np.ndarray] = field(repr=False)
+    expected: dict[str, np.ndarray] = field(repr=False)
+    latent: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
     weekly_series: frozenset[str] = frozenset()
-    ancestors: np.ndarray | None = None
+    ancestors: np.ndarray | None = field(default=None, repr=False)
     infections_source: str = ""
 
     # ------------------------------------------------------------------ shape
@@ -145,7 +146,9 @@ class Forecast:
 
     def _within(self, within: int) -> int:
         if isinstance(within, bool) or not isinstance(within, (int, np.integer)) or not 1 <= within <= self.horizon:
-            raise ValueError(f"within must be a whole number of days in [1, {self.horizon}] (the horizon), got {within!r}")
+            raise ValueError(
+                f"within must be a whole number of days in [1, {self.horizon}] (the horizon), got {within!r}"
+            )
         return int(within)
 
     # -------------------------------------------------------------- summaries
@@ -171,7 +174,9 @@ class Forecast:
         """
         draws = self.draws(series)
         if series in (_PREFIX + "susceptibles", _PREFIX + "R_eff"):
-            raise ValueError(f"{series!r} is a state, not a count of events; weekly totals exist for {self._countable()}")
+            raise ValueError(
+                f"{series!r} is a state, not a count of events; weekly totals exist for {self._countable()}"
+            )
         blocks = self.horizon // 7
         if blocks == 0:
             raise ValueError(f"weekly totals need a horizon of at least 7 days, this forecast has {self.horizon}")
@@ -216,7 +221,11 @@ class Forecast:
         return self.draws(series)[:, : self._within(within)] > threshold
 
     def exceedance(self, series: str, threshold: float, within: int) -> float:
-        """P(reported count > threshold on at least one of the next ``within`` days)."""
+        """P(reported count > threshold on at least one of the next ``within`` days).
+
+        The share of trajectories that exceed (strictly) on some day 1..within.
+        For a weekly-cadence series every day's value is the 7-day total ending
+        that day (see ``reported``); ``latent.*`` names are accepted too."""
         return float(np.mean(np.any(self._exceeds(series, threshold, within), axis=1)))
 
     def first_exceedance(self, series: str, threshold: float, within: int) -> FirstExceedance:
@@ -257,9 +266,11 @@ class Forecast:
         block totals (see :meth:`weekly`). Numbers are rounded (counts to 0.1,
         susceptibles to 1, R_eff to 0.001, days to 0.1, probabilities to 1e-4);
         a non-finite value (never produced by a compartmental model) becomes
-        null. For 2 series x 28 days x 23 levels plus the three latent
-        quantities this is about 28 kB as orjson bytes (measured for
-        ``seir_two_band``, 2000 trajectories; see tests/filters/test_forecast.py).
+        null. Size: for ``seir_two_band`` (2 series, 28 days, 23 levels, plus
+        the three latent quantities, peaks and growth) about 22 kB as orjson
+        bytes (21,979 and 22,738 bytes measured for two clouds, 2000
+        trajectories; tests/filters/test_forecast.py prints it). About 92% of
+        it is the 23 x 28 quantile tables: five of them, 3,220 numbers.
         """
         probs = _levels(levels)
         peaks = self.peak()
@@ -275,7 +286,8 @@ class Forecast:
         for name in self.reported:
             entry = _summary_block(self.reported[name], probs, "count")
             if name in self.weekly_series and self.horizon >= 7:
-                entry["weekly"] = {"ends": [int(d) for d in self.weekly_ends()], **_summary_block(self.weekly(name), probs, "count")}
+                ends = [int(d) for d in self.weekly_ends()]
+                entry["weekly"] = {"ends": ends, **_summary_block(self.weekly(name), probs, "count")}
             entry["peak"] = _peak_block(peaks[name])
             block["series"][name] = entry
         for key, draws in self.latent.items():
@@ -317,7 +329,10 @@ def _summary_block(draws: np.ndarray, probs: np.ndarray, kind: str) -> dict[str,
 def _peak_block(peak: dict[str, Any]) -> dict[str, Any]:
     return {
         "day": {"mean": _rounded(peak["day"]["mean"], "day"), "quantiles": _rounded(peak["day"]["quantiles"], "day")},
-        "size": {"mean": _rounded(peak["size"]["mean"], "count"), "quantiles": _rounded(peak["size"]["quantiles"], "count")},
+        "size": {
+            "mean": _rounded(peak["size"]["mean"], "count"),
+            "quantiles": _rounded(peak["size"]["quantiles"], "count"),
+        },
         "p_at_horizon": _rounded(peak["p_at_horizon"], "probability"),
     }
 
