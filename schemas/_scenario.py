@@ -36,15 +36,13 @@ Errors name the file, line and field.
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
-from ._errors import SpecError
-from ._loading import validate_document
+from ._loading import load_toml_model
 from ._model_spec import ModelSpec
 
 __all__ = [
@@ -313,17 +311,7 @@ def load_scenario_file(path: str | Path, spec: ModelSpec | None = None) -> Scena
     With ``spec``, flows, compartments, groups, series and the contact matrix's
     shape are also checked against that model.
     """
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise SpecError(f"{path}: cannot read scenario file: {exc.strerror}") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise SpecError(f"{path}: not valid TOML: {exc}") from None
-    model = ScenarioFile if spec is None else _checked_against(spec)
-    return validate_document(model, data, str(path), text)
+    return load_toml_model(ScenarioFile if spec is None else _checked_against(spec), path)
 
 
 EXAMPLE_SCENARIOS = ("brackenford_schools", "brackenford_single")

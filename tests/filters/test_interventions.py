@@ -407,7 +407,7 @@ def test_errors_in_a_later_scenario_point_at_its_own_lines(tmp_path):
 
 def test_unreadable_and_malformed_files_name_the_file(tmp_path):
     missing = tmp_path / "missing.toml"
-    with pytest.raises(SpecError, match=f"{missing}: cannot read scenario file"):
+    with pytest.raises(SpecError, match=f"{missing}: cannot read file"):
         load_scenario_file(missing)
     broken = tmp_path / "broken.toml"
     broken.write_text("name = \n", encoding="utf-8")
