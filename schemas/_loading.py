@@ -66,7 +66,8 @@ def validate_document(model: type[M], data: Any, source: str, text: str | None =
             if line is not None:
                 where += f":{line}"
             given = err.get("input")
-            given_text = "" if isinstance(given, dict) else f" (given {given!r})"
+            secret = any(isinstance(k, str) and ("password" in k or "secret" in k) for k in loc)
+            given_text = "" if isinstance(given, dict) else " (given a value, not shown)" if secret else f" (given {given!r})"
             msg = err["msg"].removeprefix("Value error, ")
             problems.append(f"{where}: field {_format_loc(loc)}: {msg}{given_text}")
         raise SpecError(

@@ -311,3 +311,13 @@ def test_registry_refuses_unusable_model(tmp_path):
     )
     with pytest.raises(ConfigError, match="missing.toml"):
         StreamRegistry(config, LocalCheckpointStore(tmp_path / "ck"))
+
+
+def test_a_mistyped_password_is_not_echoed_in_the_error(tmp_path):
+    """An unquoted numeric password fails validation; the error must not print it."""
+    path = tmp_path / "deploy.toml"
+    path.write_text('[kafka]\nsasl_password = 918273645\n[[streams]]\nid = "a"\nmodel = "sir"\nstart = "2025-01-01"\n')
+    with pytest.raises(SpecError) as info:
+        load_deployment_config(path, environ={})
+    assert "kafka.sasl_password" in str(info.value)
+    assert "918273645" not in str(info.value)
