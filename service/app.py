@@ -16,9 +16,20 @@ from .processor import Outcome, RecordProcessor
 from .streams import StreamRegistry
 from .transports.base import OutRecord, Record, Transport
 
-__all__ = ["Service"]
+__all__ = ["Service", "build_checkpoint_store"]
 
 log = logging.getLogger("casecloud.service")
+
+
+def build_checkpoint_store(config: DeploymentConfig) -> CheckpointStore:
+    """The store ``[service] checkpoint_store`` selects: a local directory, or a
+    compacted Kafka topic (``checkpoint_topic``, reached with the ``[kafka]`` settings)."""
+    s = config.service
+    if s.checkpoint_store == "kafka":
+        from .checkpoint_kafka import KafkaCheckpointStore
+
+        return KafkaCheckpointStore(config.kafka, s.checkpoint_topic, keep=s.keep_checkpoints)
+    return LocalCheckpointStore(s.checkpoint_dir, keep=s.keep_checkpoints)
 
 
 class Service:
@@ -40,7 +51,8 @@ class Service:
     ) -> None:
         self.config = config
         self.transport = transport
-        self.store = store or LocalCheckpointStore(config.service.checkpoint_dir, keep=config.service.keep_checkpoints)
+        self._owns_store = store is None  # a store built here is closed by run()
+        self.store = store if store is not None else build_checkpoint_store(config)
         self.metrics = metrics or Metrics()
         self.registry = StreamRegistry(config, self.store)
         self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today)
@@ -99,6 +111,11 @@ class Service:
             # Fail fast on unusable saved state (e.g. a checkpoint of another model).
             await asyncio.to_thread(self.registry.preload)
             self._count_fallbacks()
+            # Seed the update age from the checkpoints, so a stream whose feed
+            # stopped before a restart still shows as stale.
+            for stream, runtime in self.registry.runtimes.items():
+                if runtime.saved_at is not None:
+                    self.metrics.last_update.setdefault(stream, runtime.saved_at)
             await self.transport.start(on_assign=self._on_assign, on_revoke=self._settle)
             self.ready = True
             while not stop.is_set():
@@ -142,4 +159,7 @@ class Service:
                 await self.transport.stop()
                 if self.http is not None:
                     await self.http.stop()
+                close = getattr(self.store, "close", None)
+                if self._owns_store and close is not None:
+                    await asyncio.to_thread(close)
         return dict(self.counts)

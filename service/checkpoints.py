@@ -99,6 +99,7 @@ __all__ = [
     "VerifyReport",
     "decode_stream_id",
     "describe_checkpoint",
+    "decode_checkpoint",
     "encode_checkpoint",
     "encode_stream_id",
     "model_fingerprint_of",
@@ -485,7 +486,8 @@ def _parse(data: bytes) -> _Parsed:
     return parsed
 
 
-def _decode(path: Path, data: bytes) -> Checkpoint:
+def decode_checkpoint(path: Path, data: bytes) -> Checkpoint:
+    """Bytes of a checkpoint file -> Checkpoint, with every check of read_checkpoint_file; ``path`` names the source in errors."""
     parsed = _parse(data)
     if parsed.checksum_ok and parsed.version is not None and parsed.version != FORMAT_VERSION:
         raise CheckpointUnsupported(path, parsed.version)
@@ -519,7 +521,7 @@ def read_checkpoint_file(path: Path | str) -> Checkpoint:
     unreadable path raises the usual OSError.
     """
     path = Path(path)
-    return _decode(path, path.read_bytes())
+    return decode_checkpoint(path, path.read_bytes())
 
 
 def describe_checkpoint(path: Path | str) -> dict[str, Any]:

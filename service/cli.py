@@ -96,29 +96,64 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return 0
 
 
+def _describe_stored(store, stream: str, info) -> dict:
+    """describe_checkpoint's report for a checkpoint held in a Kafka store (via a temporary file)."""
+    import tempfile
+
+    from .checkpoints import CheckpointCorrupt, describe_checkpoint
+
+    try:
+        data = store.read_bytes(stream, info.step)
+    except CheckpointCorrupt as exc:
+        return {"path": str(info.path), "stored_bytes": info.size_bytes, "ok": False, "reason": exc.reason, "step": info.step}
+    with tempfile.TemporaryDirectory(prefix="casecloud-show-") as tmp:
+        copy = Path(tmp) / "checkpoint.ckpt"
+        copy.write_bytes(data or b"")
+        report = describe_checkpoint(copy)
+    report.update(path=str(info.path), stored_bytes=info.size_bytes)
+    return report
+
+
 def cmd_checkpoint(args: argparse.Namespace) -> int:
     from .checkpoints import LocalCheckpointStore, describe_checkpoint
+    from .errors import ServiceError
 
-    root = Path(args.checkpoint_dir) if args.checkpoint_dir else _load_config(args.config).service.checkpoint_dir
-    store = LocalCheckpointStore(root)
-    streams = [args.stream] if args.stream else store.streams()
-    if not streams:
-        print(f"casecloud: no checkpoints under {root}", file=sys.stderr)
+    if args.checkpoint_dir:
+        root: object = Path(args.checkpoint_dir)
+        store = LocalCheckpointStore(root)
+    else:
+        from .app import build_checkpoint_store
+
+        config = _load_config(args.config)
+        store = build_checkpoint_store(config)
+        root = f"Kafka topic {config.service.checkpoint_topic}" if config.service.checkpoint_store == "kafka" else config.service.checkpoint_dir
+    try:
+        streams = [args.stream] if args.stream else store.streams()
+        if not streams:
+            print(f"casecloud: no checkpoints under {root}", file=sys.stderr)
+            return 1
+        failed = False
+        for stream in streams:
+            infos = store.list(stream)
+            if args.action == "show":
+                if not infos:
+                    print(f"casecloud: stream {stream!r} has no checkpoint under {root}", file=sys.stderr)
+                    failed = True
+                    continue
+                report = describe_checkpoint(infos[0].path) if isinstance(store, LocalCheckpointStore) else _describe_stored(store, stream, infos[0])
+                print(orjson.dumps(report, option=orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY, default=str).decode())
+            else:
+                for report in store.verify(stream):
+                    print(f"{stream}\t{report.path}\t{'ok' if report.ok else 'CORRUPT: ' + str(report.reason)}")
+                    failed |= not report.ok
+        return 1 if failed else 0
+    except ServiceError as exc:  # e.g. the Kafka checkpoint topic cannot be reached
+        print(f"casecloud: {exc}", file=sys.stderr)
         return 1
-    failed = False
-    for stream in streams:
-        infos = store.list(stream)
-        if args.action == "show":
-            if not infos:
-                print(f"casecloud: stream {stream!r} has no checkpoint under {root}", file=sys.stderr)
-                failed = True
-                continue
-            print(orjson.dumps(describe_checkpoint(infos[0].path), option=orjson.OPT_INDENT_2 | orjson.OPT_SERIALIZE_NUMPY, default=str).decode())
-        else:
-            for report in store.verify(stream):
-                print(f"{stream}\t{report.path}\t{'ok' if report.ok else 'CORRUPT: ' + str(report.reason)}")
-                failed |= not report.ok
-    return 1 if failed else 0
+    finally:
+        close = getattr(store, "close", None)
+        if close is not None:
+            close()
 
 
 def cmd_schemas(args: argparse.Namespace) -> int:
@@ -169,7 +204,7 @@ def build_parser() -> argparse.ArgumentParser:
     ckpt = sub.add_parser("checkpoint", help="inspect saved stream state")
     ckpt.add_argument("action", choices=["show", "verify"])
     where = ckpt.add_mutually_exclusive_group(required=True)
-    where.add_argument("--config", help="deployment config (uses its checkpoint_dir)")
+    where.add_argument("--config", help="deployment config (uses its checkpoint store: checkpoint_dir or the Kafka checkpoint_topic)")
     where.add_argument("--checkpoint-dir", help="checkpoint root directory")
     ckpt.add_argument("--stream", help="one stream id (default: all)")
     ckpt.set_defaults(handler=cmd_checkpoint)
@@ -178,15 +213,20 @@ def build_parser() -> argparse.ArgumentParser:
     sch.add_argument("--out", required=True)
     sch.set_defaults(handler=cmd_schemas)
 
+    from .scenario import add_scenario_parser
+
+    add_scenario_parser(sub)
+
     bench = sub.add_parser("bench", help="measure update speed and memory against in-process baselines")
     bench.add_argument("--json", action="store_true", help="print the figures as JSON")
     bench.add_argument("--particles", type=int, default=10_000, help="particles in the reference workload")
     bench.add_argument("--repeats", type=int, default=5, help="timed repetitions per figure (median reported)")
     bench.add_argument(
         "--sections",
-        default="update,service",
+        default="update,service,forecast",
         help="comma-separated workloads: update (filter step vs floor and naive loop), "
-        "service (end to end through Kafka vs the engine alone); default: update,service",
+        "service (end to end through Kafka vs the engine alone), forecast (3 intervention scenarios "
+        "with common random numbers vs their binomial floor); default: update,service,forecast",
     )
     bench.add_argument("--kafka-bootstrap", help="service section: use this broker instead of starting a local one")
     bench.set_defaults(handler=_bench)

@@ -39,6 +39,7 @@ class StreamRuntime:
     last_period: str | None = None
     positions: dict[str, int] = field(default_factory=dict)  # "topic|partition" -> last applied offset
     alerts: dict[str, AlertState] = field(default_factory=dict)
+    saved_at: float | None = None  # when the checkpoint it was restored from was written (file time)
 
     @property
     def id(self) -> str:
@@ -62,6 +63,13 @@ class StreamRuntime:
             },
             arrays=arrays,
         )
+
+
+def _file_time(path: Path) -> float | None:
+    try:
+        return path.stat().st_mtime
+    except OSError:  # a store without files (e.g. a Kafka topic)
+        return None
 
 
 class StreamRegistry:
@@ -128,6 +136,7 @@ class StreamRegistry:
             last_period=cp.header.get("last_period"),
             positions={k: int(v) for k, v in cp.header.get("positions", {}).items()},
             alerts={k: AlertState.from_json(v) for k, v in cp.header.get("alerts", {}).items()},
+            saved_at=_file_time(loaded.path),
         )
 
     def preload(self) -> None:

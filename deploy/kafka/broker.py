@@ -448,6 +448,18 @@ class KafkaBroker:
         broker.bootstrap_servers    # still the PLAINTEXT address
 
     The listener name goes lower case in ``listener.name.<name>.`` prefixes.
+
+    SCRAM users are written into the cluster metadata when the storage is
+    formatted (``kafka-storage format --add-scram``), so they exist from the
+    first start: pass ``scram_credentials=["SCRAM-SHA-256=[name=bob,password=bob-secret]"]``
+    and enable the mechanism on the listener::
+
+        "listener.name.sasl.sasl.enabled.mechanisms": "PLAIN,SCRAM-SHA-256",
+        "listener.name.sasl.scram-sha-256.sasl.jaas.config":
+            "org.apache.kafka.common.security.scram.ScramLoginModule required;",
+
+    They only take effect on a fresh data directory (a reused one is not
+    formatted again).
     """
 
     def __init__(
@@ -460,8 +472,16 @@ class KafkaBroker:
         extra_listeners: Iterable[Listener] = (),
         java_opts: Sequence[str] = (),
         log_level: str = "INFO",
+        scram_credentials: Sequence[str] = (),
     ) -> None:
         self.work_dir = Path(work_dir).resolve()
+        self.scram_credentials = [str(c) for c in scram_credentials]
+        for cred in self.scram_credentials:
+            if not (cred.startswith(("SCRAM-SHA-256=[", "SCRAM-SHA-512=[")) and cred.endswith("]") and "name=" in cred):
+                raise ValueError(
+                    f"scram credential {cred.split('password=')[0]!r}... is malformed; allowed: "
+                    f"'SCRAM-SHA-256=[name=USER,password=SECRET]' or 'SCRAM-SHA-512=[...]'"
+                )
         self.jar_dir = Path(jar_dir).expanduser().resolve() if jar_dir else default_jar_dir()
         self._fixed_ports = {"PLAINTEXT": port, "CONTROLLER": controller_port}
         self._listeners: List[Listener] = [Listener("PLAINTEXT", "PLAINTEXT", port)]
@@ -723,8 +743,9 @@ class KafkaBroker:
     def _format_storage(self) -> None:
         if (self.data_dir / "meta.properties").exists():
             return  # formatted before: restart on the same data
+        scram = [arg for cred in self.scram_credentials for arg in ("--add-scram", cred)]
         cmd = self._java_cmd("kafka.tools.StorageTool", "format", "-t", _new_cluster_id(),
-                             "-c", str(self.properties_path), tool=True)
+                             "-c", str(self.properties_path), *scram, tool=True)
         proc = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                               timeout=120, stdin=subprocess.DEVNULL)
         if proc.returncode != 0:

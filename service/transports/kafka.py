@@ -14,16 +14,18 @@ import asyncio
 import logging
 import ssl
 from collections.abc import Sequence
+from typing import Any
 
 from aiokafka import AIOKafkaConsumer, AIOKafkaProducer, ConsumerRebalanceListener, TopicPartition
 from aiokafka import errors as kafka_errors
+from aiokafka.conn import create_conn
 
 from schemas import KafkaSettings
 
-from ..errors import TransportAuthError, TransportError
+from ..errors import ConfigError, TransportAuthError, TransportError
 from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
-__all__ = ["KafkaTransport", "translate_error"]
+__all__ = ["KafkaTransport", "client_security", "translate_error"]
 
 log = logging.getLogger("casecloud.kafka")
 
@@ -39,13 +41,67 @@ _AUTH_ERRORS: tuple[type[BaseException], ...] = (
 )
 
 
-def translate_error(exc: BaseException, what: str, topic: str | None = None) -> TransportError:
-    """Map an aiokafka exception to the most specific service error."""
+def translate_error(exc: BaseException, what: str, topic: str | None = None, *, tls: bool = False) -> TransportError:
+    """Map an aiokafka exception to the most specific service error
+    (``tls``: the connection uses TLS, so a closed connection may be a
+    refused client certificate)."""
+    if isinstance(exc, kafka_errors.IllegalSaslStateError):
+        return TransportAuthError(
+            f"Kafka refused our credentials while trying to {what}: {exc}; the broker did not accept a SASL "
+            f"handshake there: is the bootstrap address a SASL listener?",
+            topic=topic,
+        )
     if isinstance(exc, _AUTH_ERRORS):
         return TransportAuthError(f"Kafka refused our credentials while trying to {what}: {exc}", topic=topic)
+    if isinstance(exc, ssl.SSLError):
+        return TransportError(
+            f"TLS handshake failed while trying to {what}: {exc}; check kafka.ssl_cafile "
+            f"(the CA that signed the broker's certificate, whose name must match the bootstrap address) "
+            f"and, if the broker wants a client certificate, kafka.ssl_certfile / ssl_keyfile",
+            topic=topic,
+        )
+    if tls and isinstance(exc, kafka_errors.KafkaConnectionError) and "closed" in str(exc):
+        return TransportError(
+            f"the Kafka broker closed the connection while trying to {what}: {exc}; a TLS listener "
+            f"that requires a client certificate does this when kafka.ssl_certfile is missing or not trusted",
+            topic=topic,
+        )
     if isinstance(exc, kafka_errors.KafkaConnectionError):
         return TransportError(f"cannot reach the Kafka brokers to {what}: {exc}", topic=topic)
     return TransportError(f"Kafka error while trying to {what}: {type(exc).__name__}: {exc}", topic=topic)
+
+
+def client_security(settings: KafkaSettings) -> dict[str, Any]:
+    """aiokafka's security keyword arguments from our settings (the same for
+    producer, consumer, a diagnostic connection and the Kafka checkpoint
+    store). aiokafka takes SCRAM credentials through its ``sasl_plain_*``
+    arguments too."""
+    opts: dict[str, Any] = {"security_protocol": settings.security_protocol}
+    if settings.security_protocol in ("SSL", "SASL_SSL"):
+        opts["ssl_context"] = _ssl_context(settings)
+    if settings.security_protocol.startswith("SASL"):
+        opts["sasl_mechanism"] = settings.sasl_mechanism or "PLAIN"
+        opts["sasl_plain_username"] = settings.sasl_username
+        opts["sasl_plain_password"] = settings.sasl_password.get_secret_value() if settings.sasl_password else None
+    return opts
+
+
+def _ssl_context(s: KafkaSettings) -> ssl.SSLContext:
+    """Verifying context (hostname checked): the system CAs or ``ssl_cafile``,
+    plus the client certificate when ``ssl_certfile`` is set."""
+    try:
+        context = ssl.create_default_context(cafile=str(s.ssl_cafile) if s.ssl_cafile else None)
+    except (OSError, ssl.SSLError) as exc:
+        raise ConfigError(f"kafka.ssl_cafile {s.ssl_cafile}: cannot load CA certificates: {exc}") from None
+    if s.ssl_certfile is not None:
+        try:
+            context.load_cert_chain(str(s.ssl_certfile), str(s.ssl_keyfile) if s.ssl_keyfile else None)
+        except (OSError, ssl.SSLError) as exc:
+            raise ConfigError(
+                f"kafka.ssl_certfile {s.ssl_certfile} / ssl_keyfile {s.ssl_keyfile}: cannot load the client "
+                f"certificate and key (PEM, unencrypted key): {exc}"
+            ) from None
+    return context
 
 
 class _Rebalance(ConsumerRebalanceListener):
@@ -96,15 +152,26 @@ class KafkaTransport(Transport):
         }
 
     def _security(self) -> dict:
-        s = self.settings
-        opts: dict = {"security_protocol": s.security_protocol}
-        if s.security_protocol in ("SSL", "SASL_SSL"):
-            opts["ssl_context"] = ssl.create_default_context(cafile=str(s.ssl_cafile) if s.ssl_cafile else None)
-        if s.security_protocol.startswith("SASL"):
-            opts["sasl_mechanism"] = s.sasl_mechanism or "PLAIN"
-            opts["sasl_plain_username"] = s.sasl_username
-            opts["sasl_plain_password"] = s.sasl_password.get_secret_value() if s.sasl_password else None
-        return opts
+        return client_security(self.settings)
+
+    async def _diagnose(self, security: dict) -> BaseException | None:
+        """aiokafka reports any bootstrap failure (refused credentials, TLS
+        errors, unreachable hosts) as one "Unable to bootstrap" error; connect
+        to each bootstrap server ourselves to find the real cause."""
+        for address in self.settings.bootstrap_servers.split(","):
+            host, _, port = address.strip().rpartition(":")
+            if not port.isdigit():
+                continue
+            try:
+                conn = await asyncio.wait_for(
+                    create_conn(host, int(port), client_id=self.settings.client_id, **security), timeout=15
+                )
+            except asyncio.TimeoutError:
+                continue
+            except Exception as exc:  # the cause we are looking for
+                return exc
+            conn.close()
+        return None
 
     async def start(self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None) -> None:
         s = self.settings
@@ -137,7 +204,15 @@ class KafkaTransport(Transport):
             await self.consumer.start()
         except Exception as exc:
             await self.stop()
-            raise translate_error(exc, f"connect to {s.bootstrap_servers}", s.input_topic) from exc
+            cause: BaseException = exc
+            if isinstance(exc, kafka_errors.KafkaConnectionError):
+                cause = await self._diagnose(security) or exc
+            what = f"connect to {s.bootstrap_servers}"
+            if s.security_protocol.startswith("SASL"):
+                what += f" as user {s.sasl_username!r} with SASL {security['sasl_mechanism']}"
+            if s.security_protocol != "PLAINTEXT":
+                what += f" over {s.security_protocol}"
+            raise translate_error(cause, what, s.input_topic, tls="SSL" in s.security_protocol) from exc
 
     async def stop(self) -> None:
         for client in (self.consumer, self.producer):

@@ -49,8 +49,13 @@ def write_config(
     particles: int = 400,
     metrics_port: int | None = None,
     out_prefix: str | None = None,
+    checkpoint_topic: str | None = None,
 ) -> Path:
+    """A deployment config for ``casecloud serve`` over Kafka. With
+    ``checkpoint_topic`` the checkpoints go to that compacted Kafka topic
+    (``checkpoint_store = "kafka"``) instead of ``checkpoint_dir``."""
     out = out_prefix or topic
+    store = f'checkpoint_store = "kafka"\ncheckpoint_topic = "{checkpoint_topic}"' if checkpoint_topic else ""
     stream_blocks = "\n".join(
         f"""
 [[streams]]
@@ -77,6 +82,7 @@ transport = "kafka"
 [service]
 seed = 11
 checkpoint_dir = "{checkpoint_dir}"
+{store}
 
 [metrics]
 enabled = {"true" if metrics_port is not None else "false"}

@@ -84,3 +84,18 @@ def test_checkpoint_of_a_different_model_is_refused(tmp_path):
     assert STREAM in message and "fingerprint" in message
     # Nothing was overwritten: the sir checkpoint is still the newest.
     assert LocalCheckpointStore(tmp_path / "ckpt").list(STREAM)[0].step == 3
+
+
+def test_update_age_is_known_right_after_a_restart(tmp_path):
+    """A restarted service reports how old each stream's state is before any new record arrives."""
+    import os
+
+    config = _config(tmp_path)
+    _run(config, _records(2))
+    newest = LocalCheckpointStore(config.service.checkpoint_dir).list(STREAM)[0].path
+    os.utime(newest, (1_000_000.0, 1_000_000.0))
+    registry = CollectorRegistry()
+    metrics = Metrics(registry=registry, clock=lambda: 1_000_600.0)
+    service = Service(config, MemoryTransport([]), metrics=metrics, today=lambda: dt.date(2026, 12, 1))
+    asyncio.run(service.run(until_exhausted=True))
+    assert registry.get_sample_value("casecloud_stream_update_age_seconds", {"stream": STREAM}) == 600.0

@@ -638,6 +638,7 @@ def test_public_names() -> None:
         "LoadResult",
         "LocalCheckpointStore",
         "VerifyReport",
+        "decode_checkpoint",
         "decode_stream_id",
         "describe_checkpoint",
         "encode_checkpoint",
