@@ -613,13 +613,21 @@ class _Engine:
                         f"cannot create the {self._where()} with {configs}: "
                         f"{kafka_errors.for_code(code).__name__}: {message}"
                     )
-            described = await admin.describe_configs([ConfigResource(ConfigResourceType.TOPIC, self.topic, {"cleanup.policy": None})])
             policy = None
-            for response in described:
-                for resource in response.to_object()["resources"]:
-                    for entry in resource["config_entries"]:
-                        if (entry.get("config_names") or entry.get("config_name")) == "cleanup.policy":
-                            policy = entry["config_value"]
+            # A topic another replica has just created may not show its
+            # configs yet: ask again for a few seconds before judging.
+            for attempt in range(20):
+                described = await admin.describe_configs(
+                    [ConfigResource(ConfigResourceType.TOPIC, self.topic, {"cleanup.policy": None})]
+                )
+                for response in described:
+                    for resource in response.to_object()["resources"]:
+                        for entry in resource["config_entries"]:
+                            if (entry.get("config_names") or entry.get("config_name")) == "cleanup.policy":
+                                policy = entry["config_value"]
+                if policy is not None:
+                    break
+                await asyncio.sleep(0.25)
             if policy is None or {p.strip() for p in policy.split(",")} != {"compact"}:
                 raise CheckpointError(
                     f"the {self._where()} has cleanup.policy={policy!r}; a checkpoint topic must have "
