@@ -13,7 +13,34 @@ from ._linear_gaussian import LocalLevelModel
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._particles import ParticleSet
+from ._pmmh import (
+    CalibrationParameter,
+    CalibrationResult,
+    CalibrationSettings,
+    CalibrationStateError,
+    NoiseCheck,
+    calibrate,
+    calibration_parameters,
+    history_observations,
+    log_evidence_noise,
+    log_likelihood_estimate,
+    mcmc_ess,
+    one_step_intervals,
+    split_rhat,
+    unconstrained_log_prior,
+)
 from ._resampling import RESAMPLERS, resample
+from ._scores import (
+    auc,
+    bias,
+    coverage,
+    crps_from_samples,
+    crps_normal,
+    interval_score,
+    log_score_from_samples,
+    roc_curve,
+    weighted_interval_score,
+)
 from ._scenario import (
     CAUTION,
     SCENARIO_LEVELS,
@@ -30,6 +57,20 @@ from ._summary import Summary, summarise, weighted_quantiles
 from ._weights import effective_sample_size, log_sum_exp, normalised_weights
 
 __all__ = [
+    "CalibrationParameter",
+    "CalibrationResult",
+    "CalibrationSettings",
+    "CalibrationStateError",
+    "NoiseCheck",
+    "calibrate",
+    "calibration_parameters",
+    "history_observations",
+    "log_evidence_noise",
+    "log_likelihood_estimate",
+    "mcmc_ess",
+    "one_step_intervals",
+    "split_rhat",
+    "unconstrained_log_prior",
     "CompartmentalModel",
     "DayEffects",
     "Effects",
@@ -72,4 +113,13 @@ __all__ = [
     "stream_generator",
     "summarise",
     "weighted_quantiles",
+    "auc",
+    "bias",
+    "coverage",
+    "crps_from_samples",
+    "crps_normal",
+    "interval_score",
+    "log_score_from_samples",
+    "roc_curve",
+    "weighted_interval_score",
 ]

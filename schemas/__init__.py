@@ -13,6 +13,7 @@ from ._config import (
     load_deployment_config,
 )
 from ._errors import SpecError
+from ._history import History, load_history
 from ._messages import (
     MAX_COUNT,
     MESSAGE_MODELS,
@@ -101,6 +102,8 @@ __all__ = [
     "Quantity",
     "Series",
     "SpecError",
+    "History",
+    "load_history",
     "Transmission",
     "Uniform",
     "load_model_spec",

@@ -217,6 +217,18 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_scenario_parser(sub)
 
+    from .calibrate import add_calibrate_parser
+
+    add_calibrate_parser(sub)
+
+    from .report import add_report_parser
+
+    add_report_parser(sub)
+
+    from .backtest import add_backtest_parser
+
+    add_backtest_parser(sub)
+
     bench = sub.add_parser("bench", help="measure update speed and memory against in-process baselines")
     bench.add_argument("--json", action="store_true", help="print the figures as JSON")
     bench.add_argument("--particles", type=int, default=10_000, help="particles in the reference workload")

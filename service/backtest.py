@@ -1,0 +1,594 @@
+"""``casecloud backtest``: how good would the forecasts and alerts have been on past data?
+
+The history CSV (``schemas.load_history``) is replayed offline through the
+**same service path** as live data: every row becomes an observation message
+(``{"stream", "period", "counts"}``, empty cells as ``null``), the messages go
+through :class:`service.app.Service` on a :class:`MemoryTransport` with a
+temporary checkpoint directory, so validation, ordering, gap bridging, the
+filter step, the published estimates, the alert state machine and the
+checkpoints are exactly the service's. ``today`` is pinned to the day after the
+last row, so no row is refused as "future" and nothing depends on the clock.
+
+Forecasts to score
+------------------
+Estimates carry quantiles only; CRPS and the log score need draws. After each
+applied record (``Service.on_outcome``, which runs once the record is stepped
+and published and before the next is read) the stream's cloud is forecast
+read-only with :func:`filters.forecast` and ``seed`` derived from (deployment
+seed, stream id, filter step). This uses its own random numbers, so the
+stream's Generator, checkpoints and published messages are those of a plain
+replay. ``--trajectories`` defaults to the stream's ``forecast_trajectories``.
+
+For every forecast origin, horizon h (days) and observed series, the realised
+count of the row whose period ends h days after the origin's is scored
+(origins with fewer than 3 observed values of the series so far are left out
+for every method, so all methods are scored on the same targets):
+
+- WIS over the 23 levels of ``filters.FORECAST_LEVELS`` (Bracher et al. 2021),
+  CRPS from the draws (Gneiting & Raftery 2007), coverage of the central 50 %
+  (q25-q75) and 90 % (q05-q95) intervals, the log score ``-log p(y)`` (draws
+  smoothed as in :func:`filters.log_score_from_samples`), and the bias of
+  Funk et al. (2019). Lower is better for WIS, CRPS and the log score.
+  Quantiles are numpy's linear interpolation of the draws.
+
+Baselines (same origins and targets, same number of draws, scored the same way)
+------------------------------------------------------------------------------
+``persistence``
+    The last observed count ``c`` carried forward, with negative binomial
+    noise: mean ``max(c, 0.5)``, variance ``mean + s2 * h / spacing``, where
+    ``s2`` is the mean squared one-step change of the series so far (a random
+    walk's increment variance, fitted on past changes only) and ``spacing`` the
+    median days between rows; Poisson when that variance does not exceed the
+    mean.
+``trend``
+    Least squares of ``log(y + 1)`` on the day over the observed rows of the
+    last 14 days (at least the last 3 rows), projected to the target day. The
+    log-mean is drawn from the normal predictive of the fit (residual variance
+    times ``1 + 1/n + (x - xbar)^2 / Sxx``), then ``count ~ Poisson(exp(eta) - 1)``
+    (clipped at 0 and at 10^9).
+
+Alerts
+------
+For each alert rule of the stream and each origin, the service's own
+exceedance probability (from the published estimate) is paired with the
+realised event "some row whose period ends within the next ``horizon_days``
+days has the series above the threshold" (origins whose window runs past the
+end of the history, or holds no observed value, are left out); ROC and AUC
+follow (AUC null when only one outcome occurred). An *episode* is a run of
+consecutive observed rows above the threshold; its lead time is the days from
+the service's ``raised`` alert that was active on the episode's first
+exceeding day (raised on or before it, not cleared before it, and raised after
+the previous episode ended) to that day; null if there was none.
+
+Outputs (``--out DIR``): ``backtest.json`` (everything), ``scores.csv`` (the
+``scores`` rows) and ``per_origin.csv`` (the ``per_origin`` rows). In the
+ROC, ``thresholds[0]`` is ``null`` in JSON: +infinity, "never alert", the
+point (0, 0). Score rows with no scorable target are left out.
+
+Exit status: 0 done; 2 unusable arguments, config or history; 1 nothing could
+be scored.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import csv
+import datetime as dt
+import hashlib
+import math
+import sys
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import orjson
+
+from filters import (
+    FORECAST_LEVELS,
+    auc,
+    bias,
+    crps_from_samples,
+    forecast,
+    log_score_from_samples,
+    roc_curve,
+    weighted_interval_score,
+)
+
+__all__ = [
+    "CAUTIONS",
+    "METHODS",
+    "BacktestError",
+    "add_backtest_parser",
+    "alert_episodes",
+    "origin_seed",
+    "persistence_draws",
+    "trend_draws",
+    "format_backtest_table",
+    "run_backtest",
+    "run_backtest_command",
+    "write_backtest_outputs",
+]
+
+METHODS = ("casecloud", "persistence", "trend")
+CAUTIONS = (
+    "Model-based estimates with uncertainty; decision support only; local public-health judgement and "
+    "reporting rules prevail. Backtest scores describe this history only (replayed as finally reported, "
+    "without the reporting delays and revisions of real time) and do not guarantee future performance."
+)
+MIN_PAST = 3  # observed values of a series needed at an origin before it is scored
+TREND_DAYS = 14
+_LEVELS = np.asarray(FORECAST_LEVELS)
+_IDX = {lv: int(np.flatnonzero(np.isclose(_LEVELS, lv))[0]) for lv in (0.05, 0.25, 0.5, 0.75, 0.95)}
+SCORE_KEYS = ("method", "series", "horizon", "n", "wis", "crps", "coverage_50", "coverage_90", "log_score", "bias")
+ORIGIN_KEYS = (
+    "method", "series", "origin_period", "origin_day", "horizon", "target_period", "observed",
+    "median", "q05", "q25", "q75", "q95", "wis", "crps", "log_score",
+)  # fmt: skip
+
+
+class BacktestError(Exception):
+    """An unusable request (unknown stream, history with nothing the model observes, ...)."""
+
+
+@dataclass
+class _Origin:
+    period: str
+    day: int
+    date: dt.date
+    step: int
+    draws: dict[str, np.ndarray]  # series -> (M, len(horizons)) reported-count draws
+
+
+def _words(stream: str) -> list[int]:
+    digest = hashlib.sha256(stream.encode("utf-8")).digest()
+    return [int.from_bytes(digest[i : i + 4], "little") for i in range(0, 16, 4)]
+
+
+def origin_seed(seed: int, stream: str, step: int) -> int:
+    """The forecast seed of the origin after filter step ``step``: from (deployment seed, stream id, step)."""
+    return int(np.random.SeedSequence([int(seed), *_words(stream), int(step)]).generate_state(1, np.uint64)[0])
+
+
+def _baseline_rng(seed: int, stream: str, step: int, method: int, series: int) -> np.random.Generator:
+    return np.random.default_rng(np.random.SeedSequence([int(seed), *_words(stream), int(step), 1 + method, series]))
+
+
+# ----------------------------------------------------------------- baselines
+def _negbin(rng: np.random.Generator, mean: float, var: float, size: tuple[int, ...]) -> np.ndarray:
+    if var <= mean * (1 + 1e-9):
+        return rng.poisson(mean, size)
+    n = mean * mean / (var - mean)
+    return rng.negative_binomial(n, n / (n + mean), size)
+
+
+def persistence_draws(past_days: np.ndarray, past: np.ndarray, horizons: list[int], m: int, rng) -> np.ndarray:
+    """(m, len(horizons)) draws of the persistence baseline (see the module docstring)."""
+    last = float(past[-1])
+    diffs = np.diff(past.astype(float))
+    s2 = float(np.mean(diffs**2)) if diffs.size else 0.0
+    spacing = float(np.median(np.diff(past_days))) if past_days.size > 1 else 1.0
+    mean = max(last, 0.5)
+    out = np.empty((m, len(horizons)), dtype=np.int64)
+    for j, h in enumerate(horizons):
+        out[:, j] = _negbin(rng, mean, mean + s2 * h / max(spacing, 1.0), (m,))
+    return out
+
+
+def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizons: list[int], m: int, rng) -> np.ndarray:
+    """(m, len(horizons)) draws of the log-linear trend baseline (see the module docstring)."""
+    recent = past_days > origin_day - TREND_DAYS
+    if recent.sum() < MIN_PAST:
+        recent = np.zeros(past.size, dtype=bool)
+        recent[-MIN_PAST:] = True
+    x = past_days[recent].astype(float)
+    z = np.log(past[recent].astype(float) + 1.0)
+    n = x.size
+    xbar = x.mean()
+    sxx = float(np.sum((x - xbar) ** 2))
+    slope = float(np.sum((x - xbar) * (z - z.mean())) / sxx) if sxx > 0 else 0.0
+    intercept = float(z.mean() - slope * xbar)
+    resid = z - (intercept + slope * x)
+    s2 = float(np.sum(resid**2) / (n - 2)) if n > 2 else 0.0
+    out = np.empty((m, len(horizons)), dtype=np.int64)
+    for j, h in enumerate(horizons):
+        x1 = origin_day + h
+        var = s2 * (1 + 1 / n + ((x1 - xbar) ** 2 / sxx if sxx > 0 else 0.0))
+        eta = intercept + slope * x1 + math.sqrt(var) * rng.standard_normal(m)
+        lam = np.clip(np.expm1(np.minimum(eta, math.log(1e9))), 0.0, 1e9)
+        out[:, j] = rng.poisson(lam)
+    return out
+
+
+# -------------------------------------------------------------------- replay
+def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path):
+    from .app import Service
+    from .checkpoints import LocalCheckpointStore
+    from .transports import MemoryTransport
+
+    scfg = next(s for s in config.streams if s.id == stream_id)
+    config = config.model_copy(
+        update={
+            "streams": [scfg],
+            "metrics": config.metrics.model_copy(update={"enabled": False}),
+            "service": config.service.model_copy(update={"checkpoint_dir": checkpoint_dir, "checkpoint_store": "local"}),
+        }
+    )
+    store = LocalCheckpointStore(checkpoint_dir, keep=config.service.keep_checkpoints)
+    messages = []
+    transport = MemoryTransport([])
+    today = max(history.dates) + dt.timedelta(days=1)
+    service = Service(config, transport, store=store, today=lambda: today)
+    model = service.registry.models[stream_id]
+    series_names = [s.name for s in model.series if s.name in history.series]
+    for period, counts in zip(history.periods, history.values):
+        body = {name: counts.get(name) for name in series_names}
+        messages.append(orjson.dumps({"stream": stream_id, "period": period, "counts": body}))
+    for value in messages:
+        transport.feed(value)
+    origins: list[_Origin] = []
+    hmax = max(horizons)
+    cols = [h - 1 for h in horizons]
+
+    def hook(outcome) -> None:
+        if outcome.status != "applied" or outcome.stream != stream_id:
+            return
+        runtime = service.registry.runtimes[stream_id]
+        pf = runtime.filter
+        fc = forecast(
+            runtime.model, pf.particles, pf.weights(), pf.time, hmax, trajectories,
+            seed=origin_seed(config.service.seed, stream_id, pf.step_count),
+        )  # fmt: skip
+        draws = {name: np.array(fc.reported[name][:, cols]) for name in series_names}
+        date = scfg.start + dt.timedelta(days=int(runtime.last_day))
+        origins.append(_Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws))
+
+    service.on_outcome = hook
+    counts = asyncio.run(service.run(until_exhausted=True))
+    estimates = [orjson.loads(r.value) for r in transport.published["estimates"]]
+    alerts = [orjson.loads(r.value) for r in transport.published["alerts"]]
+    dead = [orjson.loads(r.value) for r in transport.published["dead_letters"]]
+    return model, scfg, series_names, origins, estimates, alerts, dead, counts
+
+
+# ------------------------------------------------------------------- scoring
+def _r(x: Any) -> float | None:
+    x = float(x)
+    return round(x, 6) if math.isfinite(x) else None
+
+
+def _score_block(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
+    """Scores of (M, k) draws against k observations."""
+    q = np.quantile(draws, _LEVELS, axis=0)  # (23, k)
+    return {
+        "q": q,
+        "wis": weighted_interval_score(_LEVELS, q, y),
+        "crps": crps_from_samples(draws, y),
+        "cov50": ((q[_IDX[0.25]] <= y) & (y <= q[_IDX[0.75]])).astype(float),
+        "cov90": ((q[_IDX[0.05]] <= y) & (y <= q[_IDX[0.95]])).astype(float),
+        "log": log_score_from_samples(draws, y),
+        "bias": bias(draws, y),
+    }
+
+
+def _realised(history, series: str) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """(days since the first row's date, values, periods) of the observed rows of ``series``."""
+    first = history.dates[0]
+    keep = [i for i, v in enumerate(history.values) if v.get(series) is not None]
+    days = np.array([(history.dates[i] - first).days for i in keep], dtype=np.int64)
+    vals = np.array([history.values[i][series] for i in keep], dtype=np.int64)
+    return days, vals, [history.periods[i] for i in keep]
+
+
+def alert_episodes(history, rule, alerts: list[dict]) -> list[dict[str, Any]]:
+    from schemas import parse_period
+
+    events = [(parse_period(a["period"]), a["status"], a["period"]) for a in alerts if a["rule"] == rule.name]
+    rows = [(p, d, v[rule.series]) for p, d, v in zip(history.periods, history.dates, history.values) if v.get(rule.series) is not None]
+    out: list[dict[str, Any]] = []
+    prev_above = False
+    prev_end: dt.date | None = None  # last exceeding day of the previous episode
+    last_above: dt.date | None = None
+    for period, date, value in rows:
+        above = value > rule.threshold
+        if above and not prev_above:
+            active: tuple[dt.date, str] | None = None
+            for when, status, raised_period in events:
+                if when > date:
+                    break
+                if status == "raised":
+                    active = (when, raised_period)
+                elif status == "cleared" and when < date:
+                    active = None
+            if active is not None and prev_end is not None and active[0] <= prev_end:
+                active = None  # still the alert of an earlier episode
+            out.append(
+                {
+                    "first_exceeding_period": period,
+                    "raised_period": None if active is None else active[1],
+                    "lead_days": None if active is None else (date - active[0]).days,
+                }
+            )
+        if not above and prev_above:
+            prev_end = last_above
+        if above:
+            last_above = date
+        prev_above = above
+    return out
+
+
+def _alert_rows(history, scfg, origins: list[_Origin], estimates: list[dict], alerts: list[dict]) -> list[dict[str, Any]]:
+    by_period = {e["period"]: e for e in estimates}
+    last = history.dates[-1]
+    rows = []
+    for rule in scfg.alerts:
+        dates = np.array([d.toordinal() for d in history.dates])
+        vals = [v.get(rule.series) for v in history.values]
+        probs, events = [], []
+        for o in origins:
+            est = by_period.get(o.period)
+            if est is None or rule.name not in (est.get("exceedance") or {}):
+                continue
+            end = o.date + dt.timedelta(days=rule.horizon_days)
+            if end > last:
+                continue
+            window = [vals[i] for i in np.flatnonzero((dates > o.date.toordinal()) & (dates <= end.toordinal())) if vals[i] is not None]
+            if not window:
+                continue
+            probs.append(est["exceedance"][rule.name]["probability"])
+            events.append(any(v > rule.threshold for v in window))
+        roc: dict[str, list] = {"fpr": [], "tpr": [], "thresholds": []}
+        area = None
+        if events and any(events) and not all(events):
+            fpr, tpr, thr = roc_curve(probs, events)
+            roc = {"fpr": [_r(v) for v in fpr], "tpr": [_r(v) for v in tpr], "thresholds": [_r(v) for v in thr]}
+            area = _r(auc(probs, events))
+        rows.append(
+            {
+                "rule": rule.name,
+                "series": rule.series,
+                "threshold": rule.threshold,
+                "horizon_days": rule.horizon_days,
+                "auc": area,
+                "roc": roc,
+                "episodes": alert_episodes(history, rule, alerts),
+                "n_origins": len(events),
+                "n_events": int(sum(events)),
+            }
+        )
+    return rows
+
+
+def run_backtest(
+    config,
+    history,
+    stream_id: str,
+    horizons: list[int] = (1, 7, 14),  # type: ignore[assignment]
+    trajectories: int | None = None,
+    checkpoint_dir: Path | None = None,
+) -> dict[str, Any]:
+    """Replay ``history`` through the service for ``stream_id`` and score it; returns the
+    ``backtest.json`` document (see the module docstring) plus a private ``_replay`` entry
+    (service counts, published estimates and alerts, dead-letter reasons) that is not written.
+
+    ``checkpoint_dir``: where the replay's checkpoints go (must be empty or absent); default a
+    temporary directory removed afterwards."""
+    horizons = sorted({int(h) for h in horizons})
+    if not horizons or horizons[0] < 1 or horizons[-1] > 90:
+        raise BacktestError(f"horizons must be whole days in 1..90, got {horizons}")
+    scfg = next((s for s in config.streams if s.id == stream_id), None)
+    if scfg is None:
+        raise BacktestError(f"stream {stream_id!r} is not configured; configured: {sorted(s.id for s in config.streams)}")
+    from .streams import load_stream_model
+
+    observed = [s.name for s in load_stream_model(scfg).series]
+    if not set(observed) & set(history.series):
+        raise BacktestError(
+            f"the history's series {history.series} include none that the model of stream {stream_id!r} observes ({observed})"
+        )
+    m = int(trajectories or scfg.forecast_trajectories)
+    if m < 10:
+        raise BacktestError(f"trajectories must be at least 10, got {m}")
+    if checkpoint_dir is not None and Path(checkpoint_dir).exists() and any(Path(checkpoint_dir).iterdir()):
+        raise BacktestError(f"checkpoint directory {checkpoint_dir} is not empty; a backtest replays from scratch")
+    with tempfile.TemporaryDirectory(prefix="casecloud-backtest-") as tmp:
+        where = Path(checkpoint_dir) if checkpoint_dir is not None else Path(tmp)
+        model, scfg, series_names, origins, estimates, alerts, dead, counts = _replay(config, history, stream_id, horizons, m, where)
+    seed = config.service.seed
+    first = history.dates[0]
+    per_origin: list[dict[str, Any]] = []
+    acc: dict[tuple[str, str, int], dict[str, list[float]]] = {}
+    date_index = {d: i for i, d in enumerate(history.dates)}
+    for si, series in enumerate(series_names):
+        days, vals, _ = _realised(history, series)
+        for o in origins:
+            oday = (o.date - first).days
+            past = days <= oday
+            if past.sum() < MIN_PAST:
+                continue
+            targets, ys, hs = [], [], []
+            for j, h in enumerate(horizons):
+                i = date_index.get(o.date + dt.timedelta(days=h))
+                if i is not None and history.values[i].get(series) is not None:
+                    targets.append(j)
+                    ys.append(history.values[i][series])
+                    hs.append(h)
+            if not targets:
+                continue
+            y = np.asarray(ys, dtype=float)
+            draws = {
+                "casecloud": o.draws[series][:, targets],
+                "persistence": persistence_draws(days[past], vals[past], hs, m, _baseline_rng(seed, stream_id, o.step, 0, si)),
+                "trend": trend_draws(days[past], vals[past], oday, hs, m, _baseline_rng(seed, stream_id, o.step, 1, si)),
+            }
+            for method in METHODS:
+                sc = _score_block(draws[method], y)
+                for k, h in enumerate(hs):
+                    target = history.periods[date_index[o.date + dt.timedelta(days=h)]]
+                    q = sc["q"][:, k]
+                    per_origin.append(
+                        {
+                            "method": method,
+                            "series": series,
+                            "origin_period": o.period,
+                            "origin_day": o.day,
+                            "horizon": h,
+                            "target_period": target,
+                            "observed": int(ys[k]),
+                            "median": _r(q[_IDX[0.5]]),
+                            "q05": _r(q[_IDX[0.05]]),
+                            "q25": _r(q[_IDX[0.25]]),
+                            "q75": _r(q[_IDX[0.75]]),
+                            "q95": _r(q[_IDX[0.95]]),
+                            "wis": _r(sc["wis"][k]),
+                            "crps": _r(sc["crps"][k]),
+                            "log_score": _r(sc["log"][k]),
+                        }
+                    )
+                    bucket = acc.setdefault((method, series, h), {k2: [] for k2 in ("wis", "crps", "cov50", "cov90", "log", "bias")})
+                    for k2 in bucket:
+                        bucket[k2].append(float(sc[k2][k]))
+    scores = []
+    for method in METHODS:
+        for series in series_names:
+            for h in horizons:
+                b = acc.get((method, series, h))
+                if not b:
+                    continue
+                scores.append(
+                    {
+                        "method": method,
+                        "series": series,
+                        "horizon": h,
+                        "n": len(b["wis"]),
+                        "wis": _r(np.mean(b["wis"])),
+                        "crps": _r(np.mean(b["crps"])),
+                        "coverage_50": _r(np.mean(b["cov50"])),
+                        "coverage_90": _r(np.mean(b["cov90"])),
+                        "log_score": _r(np.mean(b["log"])),
+                        "bias": _r(np.mean(b["bias"])),
+                    }
+                )
+    alert_rows = _alert_rows(history, scfg, origins, estimates, alerts)
+    for row in alert_rows:  # kept internal: not part of the documented document
+        row.pop("n_origins"), row.pop("n_events")
+    return {
+        "stream": stream_id,
+        "model": model.spec.name,
+        "history": {"first": history.periods[0], "last": history.periods[-1], "n": len(history)},
+        "horizons": horizons,
+        "methods": list(METHODS),
+        "scores": scores,
+        "per_origin": per_origin,
+        "alerts": alert_rows,
+        "cautions": CAUTIONS,
+        "_replay": {"counts": counts, "estimates": estimates, "alerts": alerts,
+                    "dead_letters": [d["reason"] for d in dead], "trajectories": m},
+    }  # fmt: skip
+
+
+# ------------------------------------------------------------------- outputs
+def _csv(path: Path, keys: tuple[str, ...], rows: list[dict[str, Any]]) -> None:
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        w = csv.DictWriter(f, fieldnames=list(keys), lineterminator="\n")
+        w.writeheader()
+        for row in rows:
+            w.writerow({k: "" if row[k] is None else row[k] for k in keys})
+
+
+def write_backtest_outputs(result: dict[str, Any], out: Path) -> list[Path]:
+    """Write backtest.json, scores.csv and per_origin.csv into ``out``."""
+    out.mkdir(parents=True, exist_ok=True)
+    doc = {k: v for k, v in result.items() if not k.startswith("_")}
+    paths = [out / "backtest.json", out / "scores.csv", out / "per_origin.csv"]
+    paths[0].write_bytes(orjson.dumps(doc, option=orjson.OPT_INDENT_2) + b"\n")
+    _csv(paths[1], SCORE_KEYS, doc["scores"])
+    _csv(paths[2], ORIGIN_KEYS, doc["per_origin"])
+    return paths
+
+
+def _f(x: Any, fmt: str = "{:.2f}") -> str:
+    return "-" if x is None else fmt.format(x)
+
+
+def format_backtest_table(result: dict[str, Any]) -> str:
+    """Readable summary: per series, method x horizon (WIS, CRPS, cov50, cov90), then alerts and cautions."""
+    h = result["history"]
+    lines = [
+        f"casecloud backtest: stream {result['stream']} (model {result['model']}), "
+        f"history {h['first']} .. {h['last']} ({h['n']} rows), horizons {result['horizons']} days",
+    ]
+    series = sorted({r["series"] for r in result["scores"]})
+    for s in series:
+        lines += ["", f"series {s}  (lower WIS/CRPS is better; nominal coverage 0.50 / 0.90)"]
+        lines.append(f"{'method':<12}{'horizon':>8}{'n':>6}{'WIS':>10}{'CRPS':>10}{'cov50':>8}{'cov90':>8}")
+        for r in result["scores"]:
+            if r["series"] == s:
+                lines.append(
+                    f"{r['method']:<12}{r['horizon']:>8}{r['n']:>6}{_f(r['wis']):>10}{_f(r['crps']):>10}"
+                    f"{_f(r['coverage_50']):>8}{_f(r['coverage_90']):>8}"
+                )
+    for a in result["alerts"]:
+        leads = [e["lead_days"] for e in a["episodes"]]
+        warned = [x for x in leads if x is not None]
+        lines += [
+            "",
+            f"alert {a['rule']} ({a['series']} > {a['threshold']:g} within {a['horizon_days']} days): "
+            f"AUC {_f(a['auc'], '{:.3f}')}; {len(leads)} realised episode(s), {len(warned)} with an alert raised"
+            + (f" (lead days {warned})" if warned else ""),
+        ]
+    lines += ["", f"Cautions: {result['cautions']}"]
+    return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------- CLI
+def _horizons(text: str) -> list[int]:
+    try:
+        values = [int(part) for part in text.split(",") if part.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"horizons must be comma-separated whole days, e.g. 1,7,14; got {text!r}") from None
+    if not values or min(values) < 1 or max(values) > 90:
+        raise argparse.ArgumentTypeError(f"horizons must be whole days in 1..90, got {text!r}")
+    return values
+
+
+def add_backtest_parser(sub) -> None:
+    p = sub.add_parser("backtest", help="replay a history through the service and score its forecasts and alerts")
+    p.add_argument("--config", required=True, help="deployment config TOML")
+    p.add_argument("--history", required=True, help="CSV: period,<series...> (empty cell = not reported)")
+    p.add_argument("--stream", required=True, help="stream id in the config")
+    p.add_argument("--horizons", type=_horizons, default=[1, 7, 14], help="days ahead to score (default 1,7,14)")
+    p.add_argument("--trajectories", type=int, help="draws per forecast (default: the stream's forecast_trajectories)")
+    p.add_argument("--out", help="directory for backtest.json, scores.csv and per_origin.csv")
+    p.set_defaults(handler=run_backtest_command)
+
+
+def run_backtest_command(args: argparse.Namespace) -> int:
+    from schemas import SpecError, load_deployment_config, load_history
+
+    from .errors import ServiceError
+
+    def fail(message: str, code: int) -> int:
+        print(f"casecloud backtest: {message}", file=sys.stderr)
+        return code
+
+    try:
+        config = load_deployment_config(args.config)
+        history = load_history(args.history)
+        result = run_backtest(config, history, args.stream, args.horizons, args.trajectories)
+    except (SpecError, BacktestError) as exc:
+        return fail(str(exc), 2)
+    except ServiceError as exc:
+        return fail(str(exc), 2)
+    dead = result["_replay"]["dead_letters"]
+    if dead:
+        print(f"casecloud backtest: {len(dead)} history row(s) refused by the service: {sorted(set(dead))}", file=sys.stderr)
+    if args.out:
+        for path in write_backtest_outputs(result, Path(args.out)):
+            print(path, file=sys.stderr)
+    print(format_backtest_table(result))
+    if not result["scores"]:
+        return fail("nothing could be scored (no origin had an observed target at the requested horizons)", 1)
+    return 0

@@ -1,0 +1,294 @@
+"""``casecloud report``: a static HTML page with PNG figures, from the demo's real outputs.
+
+The demo runs once (40 days, 300 particles, as in test_file_transport.py); the
+report is built from its estimates, alerts and observation feed plus a small
+synthetic ``backtest.json`` in the format ``service/backtest.py`` writes.
+Figures are checked as real images (PNG signature, read back with
+matplotlib, not a single colour), the page for its facts and cautions, and bad
+inputs for a clear error with a non-zero exit.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+import shutil
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.image as mpimg  # noqa: E402
+import numpy as np  # noqa: E402
+import orjson  # noqa: E402
+import pytest  # noqa: E402
+
+from schemas import AlertMessage  # noqa: E402
+from service import cli  # noqa: E402
+from service.report import _alert_periods, _fmt, _forecast_band  # noqa: E402
+from service.report_figures import ess_figure  # noqa: E402
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+STREAM = "brackenford-ed-ili"  # the demo's invented district
+
+
+def synthetic_backtest(stream: str = STREAM) -> dict:
+    """A small backtest.json in the agreed format (numbers invented, deterministic)."""
+    horizons = [1, 7, 14]
+    methods = ["casecloud", "persistence", "trend"]
+    scores, per_origin = [], []
+    for si, series in enumerate(["ed_child", "ed_adult"]):
+        for mi, method in enumerate(methods):
+            for h in horizons:
+                wis = round((4.0 + si) * (1 + 0.08 * h) * (1.0 + 0.35 * mi), 3)
+                scores.append({
+                    "method": method, "series": series, "horizon": h, "n": 30 - h,
+                    "wis": wis, "crps": round(wis * 0.8, 3),
+                    "coverage_50": round(0.52 - 0.04 * mi - 0.005 * h, 3),
+                    "coverage_90": round(0.91 - 0.08 * mi - 0.004 * h, 3),
+                    "log_score": round(-2.0 - 0.3 * mi - 0.02 * h, 3), "bias": round(0.05 * (mi - 1), 3),
+                })
+                per_origin.append({
+                    "method": method, "series": series, "origin_period": "2025-09-20", "origin_day": 19,
+                    "horizon": h, "target_period": (dt.date(2025, 9, 20) + dt.timedelta(days=h)).isoformat(),
+                    "observed": 40 + h, "median": 38.0 + h, "q05": 20.0, "q25": 30.0, "q75": 50.0, "q95": 70.0,
+                    "wis": wis, "crps": round(wis * 0.8, 3), "log_score": -3.1,
+                })
+    return {
+        "stream": stream,
+        "model": "seir_two_band",
+        "history": {"first": "2025-09-02", "last": "2025-10-11", "n": 40},
+        "horizons": horizons,
+        "methods": methods,
+        "scores": scores,
+        "per_origin": per_origin,
+        "alerts": [{
+            "rule": "child_ed_surge", "series": "ed_child", "threshold": 40.0, "horizon_days": 7,
+            "auc": 0.8125,
+            "roc": {"fpr": [0.0, 0.0, 0.25, 0.5, 1.0], "tpr": [0.0, 0.5, 0.75, 1.0, 1.0],
+                    "thresholds": [1.01, 0.9, 0.6, 0.3, 0.0]},
+            "episodes": [{"first_exceeding_period": "2025-09-22", "raised_period": "2025-09-14", "lead_days": 8}],
+        }],
+        "cautions": "Synthetic backtest for the tests: invented numbers.",
+    }
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("demo")
+    assert cli.main(["demo", "--out", str(out), "--days", "40", "--particles", "300", "--quiet"]) == 0
+    bt = out / "bt"
+    bt.mkdir()
+    (bt / "backtest.json").write_bytes(orjson.dumps(synthetic_backtest(), option=orjson.OPT_INDENT_2))
+    return out
+
+
+def _report_args(demo: Path, out: Path) -> list[str]:
+    return [
+        "report", "--estimates", str(demo / "estimates.ndjson"), "--alerts", str(demo / "alerts.ndjson"),
+        "--observations", str(demo / "observations.ndjson"), "--backtest", str(demo / "bt"), "--out", str(out),
+    ]
+
+
+@pytest.fixture(scope="module")
+def report(demo, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("report")
+    assert cli.main(_report_args(demo, out)) == 0
+    return out
+
+
+def _estimates(demo: Path) -> list[dict]:
+    return [orjson.loads(line) for line in (demo / "estimates.ndjson").read_bytes().splitlines() if line]
+
+
+def _img_sources(page: str) -> list[str]:
+    return re.findall(r'<img src="([^"]+)"', page)
+
+
+def check_png(path: Path) -> np.ndarray:
+    data = path.read_bytes()
+    assert data[:8] == PNG_SIGNATURE, f"{path.name} is not a PNG"
+    assert len(data) > 8_000, f"{path.name} is only {len(data)} bytes"
+    pixels = mpimg.imread(path)
+    assert pixels.ndim == 3 and pixels.shape[0] > 200 and pixels.shape[1] > 300, pixels.shape
+    rgb = pixels[..., :3]
+    assert float(rgb.var()) > 1e-3, f"{path.name} is (nearly) a single colour"
+    # More than a handful of distinct colours: axes, bands and markers were drawn.
+    packed = (rgb[::3, ::3] * 255).round().astype(np.int64) @ np.array([65536, 256, 1])
+    assert np.unique(packed).size > 20
+    return pixels
+
+
+def test_report_writes_page_and_real_figures(report):
+    page = (report / "index.html").read_text(encoding="utf-8")
+    sources = _img_sources(page)
+    expected = {
+        "series_ed_child.png", "series_ed_adult.png", "susceptibles.png", "compartments.png", "r_eff.png",
+        "parameters.png", "ess.png", "exceedance_child_ed_surge.png",
+        "backtest_wis.png", "backtest_coverage.png", "backtest_roc.png",
+    }
+    assert set(sources) == expected
+    assert len(sources) == len(set(sources))
+    # Every PNG in the directory is on the page, and every image on the page exists.
+    assert {p.name for p in report.glob("*.png")} == set(sources)
+    for name in sources:
+        assert "/" not in name and ":" not in name  # relative, beside the page
+        check_png(report / name)
+
+
+def test_page_states_facts_cautions_and_window(report, demo):
+    page = (report / "index.html").read_text(encoding="utf-8")
+    est = _estimates(demo)
+    first, last = est[0], est[-1]
+    for phrase in (
+        "Model-based estimates with stated uncertainty",
+        "decision support only",
+        "Local public-health judgement and reporting rules prevail",
+        "Aggregated counts only",
+    ):
+        assert phrase in page
+    assert page.index('class="caution"') < page.index("<h2>")  # the cautions come before any section
+    assert last["model"] == "seir_two_band" and "seir_two_band" in page
+    assert last["model_fingerprint"] in page
+    assert STREAM in page
+    assert f"{first['period']} to {last['period']}" in page
+    assert f"{len(est)} estimates" in page
+    # The latest summary row of R_eff carries the latest estimate's numbers.
+    q = last["quantities"]["R_eff"]
+    row = f"<tr><td>R_eff</td><td>{_fmt(q['mean'])}</td><td>{_fmt(q['quantiles']['0.5'])}</td>"
+    assert row in page
+    # The demo feed holds a truncated line and a negative count: both skipped and said so.
+    assert "2 line(s) skipped" in page
+    # Backtest: AUC, the lead time and the backtest's own cautions.
+    assert "0.812" in page and "Synthetic backtest for the tests" in page
+    assert "★" in page
+    # Self-contained: no script, no external resource, no wall-clock time.
+    assert "<script" not in page.lower()
+    assert not re.search(r'(src|href)="(https?:|//)', page)
+    today = dt.date.today().isoformat()
+    assert today not in page or today in (demo / "estimates.ndjson").read_text()
+
+
+def test_same_inputs_elsewhere_give_the_same_page(report, demo, tmp_path):
+    copy = tmp_path / "inputs"
+    copy.mkdir()
+    for name in ("estimates.ndjson", "alerts.ndjson", "observations.ndjson"):
+        shutil.copy(demo / name, copy / name)
+    shutil.copytree(demo / "bt", copy / "bt")
+    again = tmp_path / "again"
+    assert cli.main(_report_args(copy, again)) == 0
+    assert (again / "index.html").read_bytes() == (report / "index.html").read_bytes()
+    for png in report.glob("*.png"):
+        assert (again / png.name).read_bytes() == png.read_bytes(), png.name
+
+
+def test_checkpoint_page(demo, tmp_path):
+    out = tmp_path / "state"
+    args = ["report", "--checkpoint-dir", str(demo / "checkpoints"), "--stream", STREAM, "--out", str(out)]
+    assert cli.main(args) == 0
+    page = (out / "index.html").read_text(encoding="utf-8")
+    assert set(_img_sources(page)) == {"parameters.png", "susceptibles.png"}
+    for name in _img_sources(page):
+        check_png(out / name)
+    last = _estimates(demo)[-1]
+    assert last["model_fingerprint"] in page
+    assert f"step {last['step']}, last period {last['period']}" in page
+    for name in ("beta", "rho", "R_eff", "expected.ed_child", "S[child]"):
+        assert f"<tr><td>{name}</td>" in page
+    assert "decision support only" in page
+    # The same inputs give the same bytes (no wall-clock time in the page or the PNGs).
+    # Elsewhere: the same state copied to another directory and reported into another one.
+    shutil.copytree(demo / "checkpoints", tmp_path / "copy")
+    again = tmp_path / "again"
+    assert cli.main(["report", "--checkpoint-dir", str(tmp_path / "copy"), "--stream", STREAM, "--out", str(again)]) == 0
+    for name in ["index.html", *_img_sources(page)]:
+        assert (again / name).read_bytes() == (out / name).read_bytes(), name
+
+
+def test_forecast_band_reads_the_right_levels():
+    levels = [0.01, 0.025, 0.05, 0.10, 0.15, 0.20, 0.25, 0.30, 0.35, 0.40, 0.45, 0.50,
+              0.55, 0.60, 0.65, 0.70, 0.75, 0.80, 0.85, 0.90, 0.95, 0.975, 0.99]
+    block = {"levels": levels}
+    entry = {"mean": [1.0, 2.0], "quantiles": [[float(i), float(i) + 0.5] for i in range(23)]}
+    band, mean = _forecast_band(block, entry, dt.date(2025, 10, 1))
+    assert band.dates == [dt.date(2025, 10, 2), dt.date(2025, 10, 3)]
+    assert band.median.tolist() == [11.0, 11.5]
+    assert band.lo50.tolist() == [6.0, 6.5] and band.hi50.tolist() == [16.0, 16.5]
+    assert band.lo90.tolist() == [2.0, 2.5] and band.hi90.tolist() == [20.0, 20.5]
+    assert mean == ([dt.date(2025, 10, 2), dt.date(2025, 10, 3)], [1.0, 2.0])
+
+
+def _alert(status: str, period: str, step: int) -> AlertMessage:
+    return AlertMessage(id="a", event_id=f"e{step}", stream=STREAM, rule="r", status=status, period=period, step=step,
+                        series="ed_child", threshold=40, horizon_days=7, probability=0.8, raise_level=0.7,
+                        clear_level=0.4, latest_mean=None)
+
+
+def test_alert_periods_from_raise_to_clear():
+    alerts = [_alert("raised", "2025-09-10", 9), _alert("updated", "2025-09-12", 11), _alert("cleared", "2025-09-20", 19),
+              _alert("raised", "2025-10-01", 30)]
+    assert _alert_periods(alerts, "r") == [(dt.date(2025, 9, 10), dt.date(2025, 9, 20)), (dt.date(2025, 10, 1), None)]
+    assert _alert_periods(alerts, "other") == []
+
+
+def test_collapses_are_highlighted_in_red(tmp_path):
+    dates = [dt.date(2025, 9, 1) + dt.timedelta(days=k) for k in range(20)]
+    fraction = np.linspace(0.9, 0.4, 20)
+    resampled = np.zeros(20, dtype=bool)
+    collapsed = np.zeros(20, dtype=bool)
+    ess_figure(tmp_path / "calm.png", dates, fraction, resampled, collapsed)
+    collapsed[[5, 12]] = True
+    ess_figure(tmp_path / "collapse.png", dates, fraction, resampled, collapsed)
+
+    def reddish(path: Path) -> int:
+        rgb = mpimg.imread(path)[..., :3]
+        return int(((rgb[..., 0] > 0.8) & (rgb[..., 0] - rgb[..., 1] > 0.15) & (rgb[..., 0] - rgb[..., 2] > 0.15)).sum())
+
+    assert reddish(tmp_path / "calm.png") < 50
+    assert reddish(tmp_path / "collapse.png") > 1000
+
+
+# ----------------------------------------------------------------- bad input
+def _fails(argv: list[str], capsys) -> str:
+    assert cli.main(argv) == 2
+    return capsys.readouterr().err
+
+
+def test_missing_estimates_file(tmp_path, capsys):
+    err = _fails(["report", "--estimates", str(tmp_path / "nope.ndjson"), "--out", str(tmp_path / "o")], capsys)
+    assert "nope.ndjson" in err and "no such file" in err
+    assert not (tmp_path / "o" / "index.html").exists()
+
+
+def test_malformed_estimate_line(demo, tmp_path, capsys):
+    lines = (demo / "estimates.ndjson").read_bytes().splitlines()
+    bad = tmp_path / "estimates.ndjson"
+    bad.write_bytes(b"\n".join([lines[0], lines[1], lines[2][:40]] + lines[3:]) + b"\n")
+    err = _fails(["report", "--estimates", str(bad), "--out", str(tmp_path / "o")], capsys)
+    assert "line 3" in err and "not JSON" in err
+
+
+def test_estimate_with_wrong_field(demo, tmp_path, capsys):
+    first = orjson.loads((demo / "estimates.ndjson").read_bytes().splitlines()[0])
+    first["ess"] = "plenty"
+    bad = tmp_path / "estimates.ndjson"
+    bad.write_bytes(orjson.dumps(first) + b"\n")
+    err = _fails(["report", "--estimates", str(bad), "--out", str(tmp_path / "o")], capsys)
+    assert "line 1" in err and "ess" in err and "not a valid estimate" in err
+
+
+def test_backtest_missing_field(demo, tmp_path, capsys):
+    bt = synthetic_backtest()
+    del bt["scores"][0]["wis"]
+    (tmp_path / "backtest.json").write_bytes(orjson.dumps(bt))
+    err = _fails(["report", "--estimates", str(demo / "estimates.ndjson"), "--backtest", str(tmp_path),
+                  "--out", str(tmp_path / "o")], capsys)
+    assert "scores[0]" in err and "wis" in err
+
+
+def test_checkpoint_dir_without_the_stream(demo, tmp_path, capsys):
+    shutil.copytree(demo / "checkpoints", tmp_path / "ck")
+    err = _fails(["report", "--checkpoint-dir", str(tmp_path / "ck"), "--stream", "elsewhere", "--out", str(tmp_path / "o")],
+                 capsys)
+    assert "'elsewhere'" in err and "no checkpoint" in err
