@@ -183,9 +183,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     demo = sub.add_parser("demo", help="run a made-up season end to end over the file transport (no broker)")
     demo.add_argument("--out", default="casecloud-demo", help="output directory (default: ./casecloud-demo)")
-    demo.add_argument("--days", type=int, default=150, help="days to simulate (default 150)")
+    demo.add_argument("--days", type=int, default=120, help="days to simulate (default 120)")
     demo.add_argument("--particles", type=int, default=2000, help="particles in the cloud (default 2000)")
-    demo.add_argument("--seed", type=int, default=2025, help="seed of the hidden truth")
+    demo.add_argument("--seed", type=int, default=7, help="seed of the hidden truth (default 7)")
     demo.add_argument("--quiet", action="store_true", help="no progress lines")
     demo.set_defaults(handler=cmd_demo)
 

@@ -35,7 +35,7 @@ CAUTION = (
     "never personal identifiers. The demo district, feed and epidemic are invented."
 )
 # Known truth for the demo (the filter is not told these).
-TRUE_PARAMS = {"beta": 0.30, "rho": 0.12, "k": 25.0}
+TRUE_PARAMS = {"beta": 0.20, "rho": 0.12, "k": 25.0}
 
 
 def demo_config(out: Path, particles: int) -> DeploymentConfig:
@@ -100,7 +100,7 @@ async def _run_service(config: DeploymentConfig, progress) -> dict[str, int]:
     return await service.run(until_exhausted=True)
 
 
-def run_demo(out: Path, days: int = 150, particles: int = 2000, seed: int = 2025, quiet: bool = False) -> str:
+def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, quiet: bool = False) -> str:
     """Run the demo into ``out``; returns the readable summary (also written to summary.txt)."""
     out.mkdir(parents=True, exist_ok=True)
     for name in ("observations.ndjson", "estimates.ndjson", "alerts.ndjson", "dead_letters.ndjson", "committed.json"):
@@ -174,6 +174,8 @@ def summarise_demo(out: Path, model, truth, counts1: dict, counts2: dict) -> str
         + ", ".join(f"{a['status']} on {a['period']} p={a['probability']:.2f}" for a in alerts)
         + ")",
         f"outputs: {out}/estimates.ndjson, alerts.ndjson, dead_letters.ndjson, checkpoints/",
+        f"pictures: casecloud report --estimates {out}/estimates.ndjson --alerts {out}/alerts.ndjson "
+        f"--observations {out}/observations.ndjson --out {out}/report",
         "",
         CAUTION,
     ]
