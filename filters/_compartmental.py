@@ -826,11 +826,14 @@ class CompartmentalModel:
         return out
 
     # -------------------------------------------------------------- summaries
-    def reproduction_number(self, particles: ParticleSet, t: float = 0.0) -> np.ndarray:
+    def reproduction_number(self, particles: ParticleSet, t: float = 0.0, today: Any = None) -> np.ndarray:
         """Effective reproduction number per particle from the next-generation matrix
         (van den Driessche & Watmough 2002), at the particles' current susceptibles.
 
         Assumes each infection flow's per-capita rate is linear in ``foi``.
+        ``today`` (a DayEffects from ``Effects.on_day``) applies interventions:
+        rate factors on the flows they change, the changed contact matrix, and
+        extra outflows (e.g. vaccination) from infected classes.
 
         K = F V^-1 over the infected classes of every group. F[(g, d), (h, c)] =
         a[g, d] C[g, h] w_c / N_h, where a[g, d] sums slope x susceptibles over
@@ -869,16 +872,21 @@ class CompartmentalModel:
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             # a[i]: (n, G) sum of slope x susceptibles over infection flows entering class entries[i].
             a = [np.zeros((n, G)) for _ in entries]
+            factors = today.rate_factors if today is not None else {}
             for f in entering:
                 src, dst = self._flow_ends[f]
                 slope = np.asarray(self._flow_rates[f](env1), float) - np.asarray(self._flow_rates[f](env0), float)
+                if f in factors:
+                    slope = slope * factors[f]
                 a[entries.index(pos[dst])] += slope * counts[:, :, src]
             # V of every group as an m_c x m_c table of (n, G) arrays (0.0 where no flow);
             # 1e-12 on the diagonal keeps it invertible when a class has no exit.
             V: list[list] = [[0.0] * m_c for _ in range(m_c)]
-            for f in exits:
-                src, dst = self._flow_ends[f]
-                rate = self._rate(f, env, n)
+            exit_rates = [(src, dst, self._rate(f, env, n) * factors[f] if f in factors else self._rate(f, env, n))
+                          for f in exits for src, dst in [self._flow_ends[f]]]
+            if today is not None:
+                exit_rates += [(src, dst, rate) for src, xs in today.extra.items() if src in pos for dst, rate in xs]
+            for src, dst, rate in exit_rates:
                 V[pos[src]][pos[src]] = V[pos[src]][pos[src]] + rate
                 if dst in pos:
                     V[pos[dst]][pos[src]] = V[pos[dst]][pos[src]] - rate
@@ -887,7 +895,8 @@ class CompartmentalModel:
             transposed = [[V[j][i] for j in range(m_c)] for i in range(m_c)]
             u = _solve_table(transposed, [float(self._infectious_w[c]) for c in infected])
             u = [np.broadcast_to(np.asarray(x, dtype=float), (n, G)) for x in u]
-            coupling = self.contact / self.population[None, :]  # C[g, h] / N_h
+            contact = self.contact if today is None or today.contact_t is None else today.contact_t.T
+            coupling = contact / self.population[None, :]  # C[g, h] / N_h
             rows = [(g, i) for g in range(G) for i in range(len(entries))]
             K = [[a[i][:, g] * coupling[g, h] * u[entries[j]][:, h] for h, j in rows] for g, i in rows]
             return _spectral_radius(K, n)

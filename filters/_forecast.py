@@ -475,7 +475,9 @@ def forecast(
             latent["infections"][:, h - 1] = futures.history[:, 0, track.slots, :].sum(axis=(1, 2))
         if track.sources:
             latent["susceptibles"][:, h - 1] = futures.states[:, :, track.sources].sum(axis=(1, 2))
-            latent["R_eff"][:, h - 1] = stepper.reproduction_number(futures, t1)
+            # R_eff at the end of day h, under the interventions in force on the day that follows.
+            today = None if effects is None else effects.on_day(t1)
+            latent["R_eff"][:, h - 1] = stepper.reproduction_number(futures, t1, today)
     if "R_eff" in latent and not np.any(np.isfinite(latent["R_eff"])):
         del latent["R_eff"]  # no infected classes: nothing to report
     for arrays in (reported, expected, latent):
