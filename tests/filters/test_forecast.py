@@ -36,6 +36,7 @@ import pytest
 
 import schemas
 from filters import (
+    compile_interventions,
     FORECAST_LEVELS,
     CompartmentalModel,
     FilterConfig,
@@ -222,7 +223,7 @@ def test_effects_are_passed_through_only_when_given(two_band):
     model.calls = []
     base = forecast(model, pf.particles, pf.weights(), pf.time, 3, 50, seed=3)
     assert model.calls == [{}, {}, {}]
-    marker = object()
+    marker = compile_interventions(model, [], pf.time)  # real effects with nothing in force
     model.calls.clear()
     same = forecast(model, pf.particles, pf.weights(), pf.time, 3, 50, seed=3, effects=marker)
     assert len(model.calls) == 3 and all(c == {"effects": marker} for c in model.calls)
