@@ -16,6 +16,7 @@ from ._particles import ParticleSet
 from ._pmmh import (
     CalibrationParameter,
     CalibrationResult,
+    CalibrationState,
     CalibrationSettings,
     CalibrationStateError,
     NoiseCheck,
@@ -59,6 +60,7 @@ from ._weights import effective_sample_size, log_sum_exp, normalised_weights
 __all__ = [
     "CalibrationParameter",
     "CalibrationResult",
+    "CalibrationState",
     "CalibrationSettings",
     "CalibrationStateError",
     "NoiseCheck",

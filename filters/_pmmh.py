@@ -34,11 +34,9 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import os
 from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field
-from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -55,6 +53,7 @@ __all__ = [
     "CalibrationParameter",
     "CalibrationSettings",
     "CalibrationResult",
+    "CalibrationState",
     "CalibrationStateError",
     "NoiseCheck",
     "calibrate",
@@ -506,58 +505,13 @@ def _data_fingerprint(observations: Sequence[Observation]) -> str:
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
-def _write_atomic(path: Path, data: bytes) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+class CalibrationState(Protocol):
+    """Where a calibration keeps its chains between runs (the service supplies a
+    directory-backed one; the numerical core does no I/O)."""
 
+    def load(self) -> tuple[dict[str, Any], dict[str, np.ndarray]] | None: ...
 
-def _npy_bytes(array: np.ndarray) -> bytes:
-    import io
-
-    buf = io.BytesIO()
-    np.save(buf, np.ascontiguousarray(array), allow_pickle=False)
-    return buf.getvalue()
-
-
-_ARRAYS = ("chain", "log_target", "accepted")
-
-
-def _save_state(directory: Path, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> None:
-    directory.mkdir(parents=True, exist_ok=True)
-    digests = {}
-    for name in _ARRAYS:
-        data = _npy_bytes(arrays[name])
-        digests[name] = hashlib.sha256(data).hexdigest()
-        _write_atomic(directory / f"pmmh_{name}.npy", data)
-    header = dict(header, sha256=digests)
-    _write_atomic(directory / "pmmh_state.json", json.dumps(header, indent=1, sort_keys=True).encode())
-
-
-def _load_state(directory: Path) -> tuple[dict[str, Any], dict[str, np.ndarray]] | None:
-    head = directory / "pmmh_state.json"
-    if not head.exists():
-        return None
-    try:
-        header = json.loads(head.read_text())
-    except (OSError, ValueError) as exc:
-        raise CalibrationStateError(f"{head}: unreadable calibration state ({exc}); delete it to start afresh") from None
-    arrays = {}
-    for name in _ARRAYS:
-        path = directory / f"pmmh_{name}.npy"
-        try:
-            data = path.read_bytes()
-        except OSError:
-            raise CalibrationStateError(f"{path}: missing; delete {head} to start afresh") from None
-        if hashlib.sha256(data).hexdigest() != header.get("sha256", {}).get(name):
-            raise CalibrationStateError(f"{path}: checksum does not match {head}; delete both to start afresh")
-        import io
-
-        arrays[name] = np.load(io.BytesIO(data), allow_pickle=False)
-    return header, arrays
+    def save(self, header: dict[str, Any], arrays: dict[str, np.ndarray]) -> None: ...
 
 
 # --------------------------------------------------------------------------- the sampler
@@ -587,16 +541,16 @@ def calibrate(
     observations: Sequence[Observation],
     settings: CalibrationSettings = CalibrationSettings(),
     parameters: Sequence[CalibrationParameter] | None = None,
-    state_path: str | Path | None = None,
+    state: CalibrationState | None = None,
     progress: ProgressCallback | None = None,
 ) -> CalibrationResult:
     """Run PMMH over the static parameters; see the module docstring.
 
     ``parameters`` defaults to the model's static parameters (needs a spec).
-    ``state_path``: a directory; the chains' state is saved there after every
-    ``settings.batch`` iterations (JSON header + .npy arrays, no pickle) and a
-    compatible saved state (same model fingerprint, data and settings; more
-    iterations allowed) is resumed. Resuming gives the same draws as an
+    ``state``: where the chains' state (a JSON-able header and plain arrays) is
+    saved after every ``settings.batch`` iterations; a compatible saved state
+    (same model fingerprint, data and settings; more iterations allowed) is
+    resumed (``service.calibrate.StateDirectory`` keeps it as JSON + .npy files). Resuming gives the same draws as an
     uninterrupted run. ``progress(done, total)`` counts chain iterations.
     """
     params = list(parameters) if parameters is not None else calibration_parameters(model)
@@ -608,7 +562,6 @@ def calibrate(
     fingerprint = model.fingerprint()
     data_fp = _data_fingerprint(observations)
     names = [p.name for p in params]
-    directory = Path(state_path) if state_path is not None else None
     cfg = FilterConfig(n_particles=s.particles, liu_west_discount=None)
     seeds = np.random.SeedSequence(s.seed).spawn(s.chains + 2)
     scale_rng = np.random.Generator(np.random.PCG64(seeds[s.chains]))
@@ -623,7 +576,7 @@ def calibrate(
         ll = log_likelihood_estimate(model, observations, params, _natural(params, u), s.particles, rng, cfg)
         return lp + ll if math.isfinite(ll) else -math.inf
 
-    saved = _load_state(directory) if directory is not None else None
+    saved = state.load() if state is not None else None
     chains: list[_Chain] = []
     if saved is not None:
         header, arrays = saved
@@ -642,7 +595,7 @@ def calibrate(
             problems.append(f"{header.get('iterations_done')} iterations already done, more than the {s.iterations} asked")
         if problems:
             raise CalibrationStateError(
-                f"saved calibration state in {directory} does not match this run: " + "; ".join(problems)
+                f"saved calibration state ({state}) does not match this run: " + "; ".join(problems)
                 + ". Use another state directory, or delete it to start afresh."
             )
         done = int(header["iterations_done"])
@@ -681,7 +634,7 @@ def calibrate(
             chains.append(_Chain(rng, ch, lt_arr, acc, 1, best_u.copy(), best_lt))
 
     def save() -> None:
-        if directory is None:
+        if state is None:
             return
         done = chains[0].done
         header = {
@@ -698,7 +651,7 @@ def calibrate(
             "log_target": np.stack([ch.log_target[:done] for ch in chains]),
             "accepted": np.stack([ch.accepted[:done] for ch in chains]),
         }
-        _save_state(directory, header, arrays)
+        state.save(header, arrays)
 
     total = s.iterations * s.chains
     if saved is None:

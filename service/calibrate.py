@@ -13,11 +13,16 @@ from __future__ import annotations
 import argparse
 import csv
 import datetime as dt
+import hashlib
+import io
+import json
+import os
 import sys
 import time
 from pathlib import Path
 from typing import Any, TextIO
 
+import numpy as np
 import orjson
 
 from filters import (
@@ -32,7 +37,7 @@ from filters import (
 )
 from schemas import EXAMPLE_MODELS, SpecError, example_model_path, load_history, load_model_spec
 
-__all__ = ["add_calibrate_parser", "run_calibrate_command", "history_observations", "write_outputs", "render_summary"]
+__all__ = ["StateDirectory", "add_calibrate_parser", "run_calibrate_command", "history_observations", "write_outputs", "render_summary"]
 
 CAUTION = (
     "Cautions: these are model-based estimates with stated uncertainty, conditional on the model spec "
@@ -41,6 +46,61 @@ CAUTION = (
     "Decision support only: local public-health judgement and reporting rules prevail. Aggregated counts "
     "only, no personal identifiers."
 )
+
+
+
+class StateDirectory:
+    """A calibration's chains kept in a directory: ``pmmh_state.json`` (header,
+    with the SHA-256 of every array) and one ``pmmh_<name>.npy`` per array
+    (numpy's format, never pickle), each written atomically."""
+
+    def __init__(self, directory: Path) -> None:
+        self.directory = Path(directory)
+
+    def __repr__(self) -> str:
+        return f"in {self.directory}"
+
+    @staticmethod
+    def _write_atomic(path: Path, data: bytes) -> None:
+        tmp = path.with_name(path.name + ".tmp")
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+
+    def save(self, header: dict, arrays: dict) -> None:
+        self.directory.mkdir(parents=True, exist_ok=True)
+        digests = {}
+        for name, array in sorted(arrays.items()):
+            buf = io.BytesIO()
+            np.save(buf, np.ascontiguousarray(array), allow_pickle=False)
+            data = buf.getvalue()
+            digests[name] = hashlib.sha256(data).hexdigest()
+            self._write_atomic(self.directory / f"pmmh_{name}.npy", data)
+        body = json.dumps(dict(header, sha256=digests), indent=1, sort_keys=True).encode()
+        self._write_atomic(self.directory / "pmmh_state.json", body)
+
+    def load(self):
+        head = self.directory / "pmmh_state.json"
+        if not head.exists():
+            return None
+        try:
+            header = json.loads(head.read_text())
+            digests = dict(header.pop("sha256"))
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise CalibrationStateError(f"{head}: unreadable calibration state ({exc}); delete it to start afresh") from None
+        arrays = {}
+        for name, digest in digests.items():
+            path = self.directory / f"pmmh_{name}.npy"
+            try:
+                data = path.read_bytes()
+            except OSError:
+                raise CalibrationStateError(f"{path}: missing; delete {head} to start afresh") from None
+            if hashlib.sha256(data).hexdigest() != digest:
+                raise CalibrationStateError(f"{path}: checksum does not match {head}; delete both to start afresh")
+            arrays[name] = np.load(io.BytesIO(data), allow_pickle=False)
+        return header, arrays
 
 
 def add_calibrate_parser(sub: Any) -> None:
@@ -161,7 +221,7 @@ def run_calibrate_command(args: argparse.Namespace) -> int:
     print(f"casecloud calibrate: {len(observations)} periods from {args.history}, static parameters "
           f"{[p.name for p in params]}; state in {out}", file=sys.stderr)
     try:
-        result = calibrate(model, observations, settings, params, state_path=out, progress=progress)
+        result = calibrate(model, observations, settings, params, state=StateDirectory(out), progress=progress)
     except CalibrationStateError as exc:
         print(f"casecloud calibrate: {exc}", file=sys.stderr)
         return 2

@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
+from service.calibrate import StateDirectory
 from filters import (
     CalibrationParameter,
     CalibrationSettings,
@@ -155,20 +156,20 @@ def test_resume_gives_the_same_draws_and_refuses_other_settings(tmp_path):
     whole = calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=90, **base), parameters=TOY_PARAMS)
     calls = []
     calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=45, **base), parameters=TOY_PARAMS,
-              state_path=tmp_path, progress=lambda done, total: calls.append((done, total)))
+              state=StateDirectory(tmp_path), progress=lambda done, total: calls.append((done, total)))
     assert calls[0] == (2, 90) and calls[-1] == (90, 90)  # 2 chains x 45 iterations
     resumed = calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=90, **base), parameters=TOY_PARAMS,
-                        state_path=tmp_path)
+                        state=StateDirectory(tmp_path))
     np.testing.assert_array_equal(resumed.draws, whole.draws)
     with pytest.raises(CalibrationStateError, match="settings"):
         calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=90, **dict(base, seed=4)),
-                  parameters=TOY_PARAMS, state_path=tmp_path)
+                  parameters=TOY_PARAMS, state=StateDirectory(tmp_path))
     with pytest.raises(CalibrationStateError, match="data fingerprint"):
         calibrate(ConjugateToy(), obs[:-1], CalibrationSettings(iterations=90, **base),
-                  parameters=TOY_PARAMS, state_path=tmp_path)
+                  parameters=TOY_PARAMS, state=StateDirectory(tmp_path))
     (tmp_path / "pmmh_chain.npy").write_bytes(b"garbage")
     with pytest.raises(CalibrationStateError, match="checksum"):
-        calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=90, **base), parameters=TOY_PARAMS, state_path=tmp_path)
+        calibrate(ConjugateToy(), obs, CalibrationSettings(iterations=90, **base), parameters=TOY_PARAMS, state=StateDirectory(tmp_path))
 
 
 # ------------------------------------------------------------------------- recovery
