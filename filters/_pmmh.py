@@ -117,20 +117,20 @@ def unconstrained_log_prior(params: Sequence[CalibrationParameter], u: np.ndarra
     return total if math.isfinite(total) else -math.inf
 
 
-def _natural(params: Sequence[CalibrationParameter], u: np.ndarray) -> np.ndarray:
-    u = np.asarray(u, dtype=float)
-    out = np.empty_like(u)
+def _converted(params: Sequence[CalibrationParameter], values: np.ndarray, convert) -> np.ndarray:
+    values = np.asarray(values, dtype=float)
+    out = np.empty_like(values)
     for k, p in enumerate(params):
-        out[..., k] = from_unconstrained(u[..., k], p.transform, p.bounds)
+        out[..., k] = convert(values[..., k], p.transform, p.bounds)
     return out
+
+
+def _natural(params: Sequence[CalibrationParameter], u: np.ndarray) -> np.ndarray:
+    return _converted(params, u, from_unconstrained)
 
 
 def _unconstrained(params: Sequence[CalibrationParameter], x: np.ndarray) -> np.ndarray:
-    x = np.asarray(x, dtype=float)
-    out = np.empty_like(x)
-    for k, p in enumerate(params):
-        out[..., k] = to_unconstrained(x[..., k], p.transform, p.bounds)
-    return out
+    return _converted(params, x, to_unconstrained)
 
 
 def history_observations(history: Any, start: Any) -> list[Observation]:

@@ -494,12 +494,6 @@ class _Vanished(Exception):
     """A record the index knew of was gone when fetched (pruned and compacted meanwhile)."""
 
 
-def _security(s: KafkaSettings) -> dict[str, Any]:
-    """The client security options (TLS context, SASL) exactly as the Kafka transport builds them."""
-    from .transports.kafka import client_security
-
-    return client_security(s)
-
 
 def _explain(exc: BaseException, what: str) -> str:
     """The transport's most specific wording for a Kafka client error."""
@@ -541,7 +535,9 @@ class _Engine:
         if self.consumer is not None:
             return
         s = self.settings
-        security = _security(s)
+        from .transports.kafka import client_security
+
+        security = client_security(s)  # exactly as the transport connects
         client_id = f"{s.client_id}-checkpoints"
         try:
             partitions = await self._ensure_topic(client_id, security)
@@ -578,12 +574,9 @@ class _Engine:
         self.caught_up_once = False
 
     async def stop(self) -> None:
-        for client in (self.consumer, self.producer):
-            if client is not None:
-                try:
-                    await client.stop()
-                except Exception as exc:  # closing must not mask the original problem
-                    log.warning("error while stopping a checkpoint-store Kafka client: %s", exc)
+        from .transports.kafka import stop_quietly
+
+        await stop_quietly(self.consumer, self.producer, what="checkpoint-store Kafka client")
         self.consumer = self.producer = None
         self.index.clear()
         self.caught_up_once = False

@@ -67,6 +67,15 @@ def _new(rows: int, cols: int, width: float = 11.0, row_height: float = 3.0, sha
     return fig, axes
 
 
+def _series_panels(names: Sequence[str]):
+    """Up to three panels a row, one per name; unused panels hidden. Returns (fig, axes, [(ax, name)])."""
+    cols = min(3, max(1, len(names)))
+    fig, axes = _new(-(-len(names) // cols), cols, width=11.0, row_height=3.0, sharex=False)
+    for ax in axes.flat[len(names):]:
+        ax.set_visible(False)
+    return fig, axes, list(zip(axes.flat, names))
+
+
 def _dates_axis(ax) -> None:
     locator = mdates.AutoDateLocator(minticks=4, maxticks=10)
     ax.xaxis.set_major_locator(locator)
@@ -305,20 +314,14 @@ def histogram_grid(path: Path, panels: Sequence[tuple[str, np.ndarray, np.ndarra
 
 def backtest_score_figure(path: Path, table: dict[str, dict[str, tuple[list[int], list[float]]]], score: str) -> None:
     """``table[series][method] = (horizons, values)``: one panel per series."""
-    names = sorted(table)
-    cols = min(3, max(1, len(names)))
-    rows = -(-len(names) // cols)
-    fig, axes = _new(rows, cols, width=11.0, row_height=3.0, sharex=False)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(names):
-            ax.set_visible(False)
-            continue
-        for method, (h, v) in sorted(table[names[k]].items()):
+    fig, _, panels = _series_panels(sorted(table))
+    for ax, name in panels:
+        for method, (h, v) in sorted(table[name].items()):
             ax.plot(h, v, marker="o", color=METHOD_COLOURS.get(method, None), linewidth=1.5, label=method)
-        values = np.array([x for _, (_, v) in table[names[k]].items() for x in v], dtype=float)
+        values = np.array([x for _, (_, v) in table[name].items() for x in v], dtype=float)
         values = values[np.isfinite(values) & (values > 0)]
         log = values.size > 0 and values.max() > 20 * values.min()
-        ax.set_title(f"{names[k]}: {score} by horizon (lower is better{'; log scale' if log else ''})",
+        ax.set_title(f"{name}: {score} by horizon (lower is better{'; log scale' if log else ''})",
                      fontsize=10, loc="left")
         ax.set_xlabel("horizon (days ahead)", fontsize=9)
         if log:  # one baseline far off must not flatten the others
@@ -332,22 +335,16 @@ def backtest_score_figure(path: Path, table: dict[str, dict[str, tuple[list[int]
 
 def backtest_coverage_figure(path: Path, table: dict[str, dict[str, tuple[list[int], list[float], list[float]]]]) -> None:
     """``table[series][method] = (horizons, coverage_50, coverage_90)``."""
-    names = sorted(table)
-    cols = min(3, max(1, len(names)))
-    rows = -(-len(names) // cols)
-    fig, axes = _new(rows, cols, width=11.0, row_height=3.0, sharex=False)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(names):
-            ax.set_visible(False)
-            continue
-        for method, (h, c50, c90) in sorted(table[names[k]].items()):
+    fig, axes, panels = _series_panels(sorted(table))
+    for ax, name in panels:
+        for method, (h, c50, c90) in sorted(table[name].items()):
             colour = METHOD_COLOURS.get(method, None)
             ax.plot(h, c90, marker="o", color=colour, linewidth=1.5, label=f"{method} 90 %")
             ax.plot(h, c50, marker="s", color=colour, linewidth=1.0, linestyle="--", label=f"{method} 50 %")
         ax.axhline(0.9, color="#111111", linewidth=0.8)
         ax.axhline(0.5, color="#111111", linewidth=0.8, linestyle="--")
         ax.set_ylim(0, 1.02)
-        ax.set_title(f"{names[k]}: interval coverage (lines: nominal)", fontsize=10, loc="left")
+        ax.set_title(f"{name}: interval coverage (lines: nominal)", fontsize=10, loc="left")
         ax.set_xlabel("horizon (days ahead)", fontsize=9)
         ax.grid(True, color="#dddddd", linewidth=0.6)
     handles, labels = axes.flat[0].get_legend_handles_labels()

@@ -25,7 +25,7 @@ from schemas import KafkaSettings
 from ..errors import ConfigError, TransportAuthError, TransportError
 from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
-__all__ = ["KafkaTransport", "client_security", "translate_error"]
+__all__ = ["KafkaTransport", "client_security", "stop_quietly", "translate_error"]
 
 log = logging.getLogger("casecloud.kafka")
 
@@ -69,6 +69,17 @@ def translate_error(exc: BaseException, what: str, topic: str | None = None, *, 
     if isinstance(exc, kafka_errors.KafkaConnectionError):
         return TransportError(f"cannot reach the Kafka brokers to {what}: {exc}", topic=topic)
     return TransportError(f"Kafka error while trying to {what}: {type(exc).__name__}: {exc}", topic=topic)
+
+
+async def stop_quietly(*clients: Any, what: str = "Kafka client") -> None:
+    """Stop aiokafka clients (None skipped); a failure is logged, never raised,
+    so that closing never masks the problem that led to it."""
+    for client in clients:
+        if client is not None:
+            try:
+                await client.stop()
+            except Exception as exc:
+                log.warning("error while stopping a %s: %s", what, exc)
 
 
 def client_security(settings: KafkaSettings) -> dict[str, Any]:
@@ -215,12 +226,7 @@ class KafkaTransport(Transport):
             raise translate_error(cause, what, s.input_topic, tls="SSL" in s.security_protocol) from exc
 
     async def stop(self) -> None:
-        for client in (self.consumer, self.producer):
-            if client is not None:
-                try:
-                    await client.stop()
-                except Exception as exc:  # stopping must not mask the original problem
-                    log.warning("error while stopping Kafka client: %s", exc)
+        await stop_quietly(self.consumer, self.producer)
         self.consumer = self.producer = None
 
     async def receive(self, timeout: float = 1.0) -> Record | None:
