@@ -177,7 +177,7 @@ class Progress:
     """Polls the shared checkpoint directory: newest step per stream, and when each step first appeared."""
 
     def __init__(self, ckpt: Path, streams: list[str]) -> None:
-        from service.checkpoints import LocalCheckpointStore
+        from service.state import LocalCheckpointStore
 
         self.store = LocalCheckpointStore(ckpt)
         self.streams = streams

@@ -550,7 +550,7 @@ def calibrate(
     ``state``: where the chains' state (a JSON-able header and plain arrays) is
     saved after every ``settings.batch`` iterations; a compatible saved state
     (same model fingerprint, data and settings; more iterations allowed) is
-    resumed (``service.calibrate.StateDirectory`` keeps it as JSON + .npy files). Resuming gives the same draws as an
+    resumed (``service.analysis.calibrate.StateDirectory`` keeps it as JSON + .npy files). Resuming gives the same draws as an
     uninterrupted run. ``progress(done, total)`` counts chain iterations.
     """
     params = list(parameters) if parameters is not None else calibration_parameters(model)

@@ -6,7 +6,7 @@
      +-- ConfigError            deployment config or model spec unusable at start-up
      +-- TransportError         a transport could not receive, publish or commit
      |    +-- TransportAuthError    the broker refused our credentials
-     +-- StreamStateError       a stream's saved state cannot be used (see service.checkpoints)
+     +-- StreamStateError       a stream's saved state cannot be used (see service.state)
 
 Each carries the context it knows (stream, topic, partition, offset).
 Bad *input records* are not exceptions at this level: they become dead letters.

@@ -26,7 +26,7 @@ import pytest
 import yaml
 
 from schemas import load_deployment_config
-from service.metrics import STEP_BUCKETS, WRITE_BUCKETS, Metrics
+from service.runtime.metrics import STEP_BUCKETS, WRITE_BUCKETS, Metrics
 
 REPO = Path(__file__).resolve().parents[1]
 DEPLOY = REPO / "deploy"
@@ -175,7 +175,7 @@ def _exported() -> dict[str, set[str]]:
 
 def test_rules_use_only_metrics_and_labels_the_service_exports():
     """Rule unit tests use series written by hand; this ties the names and the
-    labels in the rules to the service's real registry (service/metrics.py)."""
+    labels in the rules to the service's real registry (service/runtime/metrics.py)."""
     exported = _exported()
     scrape_labels = {"instance", "job"}
     exported["up"] = set(scrape_labels)

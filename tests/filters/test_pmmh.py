@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from service.calibrate import StateDirectory
+from service.analysis.calibrate import StateDirectory
 from filters import (
     CalibrationParameter,
     CalibrationSettings,

@@ -196,7 +196,7 @@ class ServiceProcess:
 
 def newest_step(checkpoint_dir: Path, stream: str) -> int:
     """Step of the stream's newest checkpoint (0 when it has none)."""
-    from service.checkpoints import LocalCheckpointStore
+    from service.state import LocalCheckpointStore
 
     infos = LocalCheckpointStore(checkpoint_dir).list(stream)
     return infos[0].step if infos else 0

@@ -1,7 +1,7 @@
 """The Kafka checkpoint store against a real broker, and fail-over between two
 ``casecloud serve`` processes that share nothing on disk.
 
-Part 1 exercises :class:`service.checkpoint_kafka.KafkaCheckpointStore` itself:
+Part 1 exercises :class:`service.state.kafka.KafkaCheckpointStore` itself:
 a 10,000-particle two-band SEIR cloud and a checkpoint larger than several
 chunks written and read back bit-identically, keep-K pruning by tombstones,
 two store instances (two replicas) seeing each other's writes, and the fall
@@ -34,7 +34,7 @@ from aiokafka.admin.config_resource import ConfigResource, ConfigResourceType
 from filters import CompartmentalModel, FilterConfig, ParticleFilter, simulate_season, stream_generator
 from kafka_helpers import ServiceProcess, read_all, season_messages, wait_for, write_config
 from schemas import KafkaSettings, example_model_path, load_model_spec
-from service.checkpoint_kafka import (
+from service.state.kafka import (
     KafkaCheckpointStore,
     chunk_headers,
     encode_chunk_key,
@@ -42,7 +42,7 @@ from service.checkpoint_kafka import (
     parse_key,
     partition_for,
 )
-from service.checkpoints import (
+from service.state import (
     Checkpoint,
     CheckpointCorrupt,
     CheckpointError,

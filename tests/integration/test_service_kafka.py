@@ -35,7 +35,7 @@ def _by_id(records) -> dict[str, set[bytes]]:
 
 
 def _newest_file(checkpoint_dir, stream):
-    from service.checkpoints import LocalCheckpointStore
+    from service.state import LocalCheckpointStore
 
     return LocalCheckpointStore(checkpoint_dir).list(stream)[0].path.read_bytes()
 

@@ -19,9 +19,9 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from schemas import DeploymentConfig
-from service.app import Service
-from service.metrics import Metrics
-from service.processor import Outcome
+from service.runtime.app import Service
+from service.runtime.metrics import Metrics
+from service.runtime.processor import Outcome
 from service.transports import MemoryTransport
 
 STREAM = "region-north.ed"

@@ -1,11 +1,11 @@
-"""The alert state machine, ``service.alerts.decide``, on hand-made probability paths."""
+"""The alert state machine, ``service.runtime.alerts.decide``, on hand-made probability paths."""
 
 from __future__ import annotations
 
 import pytest
 
 from schemas import AlertRule
-from service.alerts import UPDATE_STEP, AlertState, decide
+from service.runtime.alerts import UPDATE_STEP, AlertState, decide
 
 
 def rule(**kw) -> AlertRule:

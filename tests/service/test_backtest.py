@@ -22,8 +22,8 @@ import pytest
 
 from filters import CompartmentalModel, simulate_season
 from schemas import AlertRule, History, example_model_path, load_deployment_config, load_history, load_model_spec
-from service.app import Service
-from service.backtest import (
+from service.runtime.app import Service
+from service.analysis.backtest import (
     METHODS,
     ORIGIN_KEYS,
     SCORE_KEYS,

@@ -24,14 +24,14 @@ from hypothesis import strategies as st
 
 from filters import CompartmentalModel, FilterConfig, ParticleFilter, stream_generator
 from schemas import DeploymentConfig, KafkaSettings, example_model_path, load_model_spec
-from service.app import build_checkpoint_store
-from service.checkpoint_kafka import (
+from service.state import build_checkpoint_store
+from service.state.kafka.index import _Engine
+from service.state.kafka import (
     Blob,
     ChunkProblem,
     KafkaCheckpointMismatch,
     KafkaCheckpointStore,
     ParsedKey,
-    _Engine,
     blob_from_headers,
     chunk_headers,
     decode_pointer,
@@ -44,7 +44,7 @@ from service.checkpoint_kafka import (
     split_chunks,
     unpack,
 )
-from service.checkpoints import Checkpoint, CheckpointMismatch, LocalCheckpointStore, encode_checkpoint
+from service.state import Checkpoint, CheckpointMismatch, LocalCheckpointStore, encode_checkpoint
 
 UNUSUAL_IDS = [
     "ward-a",

@@ -12,9 +12,9 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from schemas import DeploymentConfig
-from service.app import Service
-from service.checkpoints import CheckpointMismatch, LocalCheckpointStore
-from service.metrics import Metrics
+from service.runtime.app import Service
+from service.state import CheckpointMismatch, LocalCheckpointStore
+from service.runtime.metrics import Metrics
 from service.transports import MemoryTransport
 
 STREAM = "fernhill-ili"

@@ -1,4 +1,4 @@
-"""Specification of service/checkpoints.py: format, durability rules and fallbacks.
+"""Specification of service/state (format, local store): format, durability rules and fallbacks.
 
 The layout test re-reads a file with nothing but ``struct``, ``hashlib`` and
 ``json`` from the standard library, following the format described in the
@@ -21,8 +21,8 @@ from hypothesis import strategies as st
 
 import filters
 import schemas
-from service import checkpoints as ck
-from service.checkpoints import (
+from service import state as ck
+from service.state import (
     Checkpoint,
     CheckpointCorrupt,
     CheckpointError,
@@ -554,7 +554,7 @@ def test_failed_rename_leaves_the_previous_checkpoint_and_no_temp_file(tmp_path:
     def crash(src, dst):
         raise OSError("simulated power loss during rename")
 
-    monkeypatch.setattr(ck.os, "replace", crash)
+    monkeypatch.setattr(os, "replace", crash)
     with pytest.raises(OSError, match="simulated power loss"):
         store.write(Checkpoint("s", 1, {"v": "new"}, {}))
     monkeypatch.undo()
@@ -576,8 +576,8 @@ def test_writes_are_fsynced_before_the_rename(tmp_path: Path, monkeypatch) -> No
         events.append("replace")
         return real_replace(src, dst)
 
-    monkeypatch.setattr(ck.os, "fsync", fsync)
-    monkeypatch.setattr(ck.os, "replace", replace)
+    monkeypatch.setattr(os, "fsync", fsync)
+    monkeypatch.setattr(os, "replace", replace)
     LocalCheckpointStore(tmp_path / "root").write(Checkpoint("s", 1, {}, {}))
     # new stream directory: its parent is synced; then file, rename, stream directory
     assert events == ["fsync-dir", "fsync-file", "replace", "fsync-dir"]
@@ -629,6 +629,7 @@ def test_public_names() -> None:
         "FORMAT_VERSION",
         "MAGIC",
         "Checkpoint",
+        "build_checkpoint_store",
         "CheckpointCorrupt",
         "CheckpointError",
         "CheckpointInfo",
@@ -650,7 +651,7 @@ def test_public_names() -> None:
 
 
 def test_no_pickle_is_involved() -> None:
-    source = Path(ck.__file__).read_text(encoding="utf-8")
+    source = "".join(f.read_text(encoding="utf-8") for f in sorted(Path(ck.__file__).parent.rglob("*.py")))
     assert "import pickle" not in source and "allow_pickle=True" not in source and "np.load(" not in source
 
 

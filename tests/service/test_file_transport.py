@@ -12,9 +12,9 @@ import pytest
 from prometheus_client import CollectorRegistry
 
 from service import cli
-from service.app import Service
-from service.demo import CAUTION
-from service.metrics import Metrics
+from service.runtime.app import Service
+from service.analysis.demo import CAUTION
+from service.runtime.metrics import Metrics
 from service.transports import FileTransport, OutRecord
 from service.transports import files as files_module
 

@@ -40,10 +40,10 @@ from prometheus_client import CollectorRegistry
 
 from filters import ParticleFilter
 from schemas import DeadLetter
-from service.checkpoints import LocalCheckpointStore
-from service.metrics import Metrics
-from service.processor import RecordProcessor
-from service.streams import StreamRegistry, StreamRuntime
+from service.state import LocalCheckpointStore
+from service.runtime.metrics import Metrics
+from service.runtime.processor import RecordProcessor
+from service.runtime.streams import StreamRegistry, StreamRuntime
 from service.transports import Record
 
 STREAM = "region-north.ed"  # as in conftest.py

@@ -33,9 +33,9 @@ from schemas import (
     load_deployment_config,
     parse_period,
 )
-from service.checkpoints import LocalCheckpointStore
+from service.state import LocalCheckpointStore
 from service.errors import ConfigError
-from service.streams import StreamRegistry
+from service.runtime.streams import StreamRegistry
 
 SCHEMA_DIR = Path(schemas.__file__).parent / "json"
 VALID = {"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": 12, "ed_child": None}, "metadata": {"feed": "ed"}}

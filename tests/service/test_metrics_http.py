@@ -1,4 +1,4 @@
-"""The health endpoint (``service.http.HealthServer``) and the Prometheus metrics.
+"""The health endpoint (``service.runtime.http.HealthServer``) and the Prometheus metrics.
 
 The HTTP client is a few lines of raw asyncio streams, so the server is
 checked on the wire (status line, headers, body), not through a library that
@@ -15,9 +15,9 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 
 from schemas import DeploymentConfig
-from service.app import Service
-from service.http import HealthServer
-from service.metrics import Metrics
+from service.runtime.app import Service
+from service.runtime.http import HealthServer
+from service.runtime.metrics import Metrics
 from service.transports import MemoryTransport
 
 

@@ -18,9 +18,9 @@ import numpy as np
 import orjson
 from prometheus_client import CollectorRegistry
 
-from service.app import Service
-from service.checkpoints import LocalCheckpointStore
-from service.metrics import Metrics
+from service.runtime.app import Service
+from service.state import LocalCheckpointStore
+from service.runtime.metrics import Metrics
 from service.transports import MemoryTransport, Record
 
 

@@ -2,7 +2,7 @@
 
 The demo runs once (40 days, 300 particles, as in test_file_transport.py); the
 report is built from its estimates, alerts and observation feed plus a small
-synthetic ``backtest.json`` in the format ``service/backtest.py`` writes.
+synthetic ``backtest.json`` in the format ``service/analysis/backtest.py`` writes.
 Figures are checked as real images (PNG signature, read back with
 matplotlib, not a single colour), the page for its facts and cautions, and bad
 inputs for a clear error with a non-zero exit.
@@ -26,8 +26,8 @@ import pytest  # noqa: E402
 
 from schemas import AlertMessage  # noqa: E402
 from service import cli  # noqa: E402
-from service.report import _alert_periods, _fmt, _forecast_band  # noqa: E402
-from service.report_figures import ess_figure  # noqa: E402
+from service.analysis.report import _alert_periods, _fmt, _forecast_band  # noqa: E402
+from service.analysis.report_figures import ess_figure  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 STREAM = "brackenford-ed-ili"  # the demo's invented district

@@ -35,7 +35,13 @@ from filters import (
     calibration_parameters,
     history_observations,
 )
-from schemas import EXAMPLE_MODELS, SpecError, example_model_path, load_history, load_model_spec
+from schemas import (
+    EXAMPLE_MODELS,
+    SpecError,
+    example_model_path,
+    load_history,
+    load_model_spec,
+)
 
 __all__ = ["StateDirectory", "add_calibrate_parser", "run_calibrate_command", "history_observations", "write_outputs", "render_summary"]
 

@@ -32,11 +32,11 @@ from schemas import (
     parse_period,
 )
 
+from ..state import Checkpoint, CheckpointInfo, CheckpointStore
+from ..transports.base import OutRecord, Record
 from .alerts import AlertState, decide
-from .checkpoints import Checkpoint, CheckpointInfo, CheckpointStore
 from .metrics import Metrics
 from .streams import StreamRegistry, StreamRuntime
-from .transports.base import OutRecord, Record
 
 __all__ = ["RecordProcessor", "Outcome", "EVENT_NAMESPACE"]
 

@@ -9,27 +9,16 @@ from collections.abc import Callable, Sequence
 
 from schemas import DeploymentConfig
 
-from .checkpoints import CheckpointStore, LocalCheckpointStore
+from ..state import CheckpointStore, build_checkpoint_store
+from ..transports.base import OutRecord, Record, Transport
 from .http import HealthServer
 from .metrics import Metrics
 from .processor import Outcome, RecordProcessor
 from .streams import StreamRegistry
-from .transports.base import OutRecord, Record, Transport
 
-__all__ = ["Service", "build_checkpoint_store"]
+__all__ = ["Service"]
 
 log = logging.getLogger("casecloud.service")
-
-
-def build_checkpoint_store(config: DeploymentConfig) -> CheckpointStore:
-    """The store ``[service] checkpoint_store`` selects: a local directory, or a
-    compacted Kafka topic (``checkpoint_topic``, reached with the ``[kafka]`` settings)."""
-    s = config.service
-    if s.checkpoint_store == "kafka":
-        from .checkpoint_kafka import KafkaCheckpointStore
-
-        return KafkaCheckpointStore(config.kafka, s.checkpoint_topic, keep=s.keep_checkpoints)
-    return LocalCheckpointStore(s.checkpoint_dir, keep=s.keep_checkpoints)
 
 
 class Service:

@@ -10,11 +10,18 @@ from pathlib import Path
 import numpy as np
 
 from filters import CompartmentalModel, FilterConfig, ParticleFilter, stream_generator
-from schemas import DeploymentConfig, ModelSpec, SpecError, StreamConfig, example_model_path, load_model_spec
+from schemas import (
+    DeploymentConfig,
+    ModelSpec,
+    SpecError,
+    StreamConfig,
+    example_model_path,
+    load_model_spec,
+)
 
+from ..errors import ConfigError
+from ..state import Checkpoint, CheckpointStore
 from .alerts import AlertState
-from .checkpoints import Checkpoint, CheckpointStore
-from .errors import ConfigError
 
 __all__ = ["StreamRuntime", "StreamRegistry", "load_stream_model"]
 

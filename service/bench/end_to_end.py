@@ -10,7 +10,7 @@ of a simulated season.
   summary, forecast for the alert rule), called directly on a fresh stream
   runtime, message after message.
 * **service**: the same messages produced to a fresh Kafka topic and consumed
-  by :class:`service.app.Service` with the Kafka transport (parse, validate,
+  by :class:`service.runtime.app.Service` with the Kafka transport (parse, validate,
   step in a worker thread, publish with acks=all, checkpoint with fsync,
   commit). Timed from the first record handled to the last.
 
@@ -50,7 +50,7 @@ __all__ = ["bench_service", "OVERHEAD_RATIO_MAX"]
 OVERHEAD_RATIO_MAX = 0.25
 STREAM = "bench-ed"
 START = dt.date(2025, 9, 1)
-BROKER_PY = Path(__file__).resolve().parents[1] / "deploy" / "kafka" / "broker.py"
+BROKER_PY = Path(__file__).resolve().parents[2] / "deploy" / "kafka" / "broker.py"
 
 
 def _config(root: Path, particles: int, bootstrap: str, topic: str) -> DeploymentConfig:
@@ -108,10 +108,10 @@ def _load_broker_module():
 def _engine_seconds(config: DeploymentConfig, messages: list[bytes], root: Path) -> list[float]:
     from schemas import ObservationMessage, parse_period
 
-    from .checkpoints import LocalCheckpointStore
-    from .metrics import Metrics
-    from .processor import RecordProcessor
-    from .streams import StreamRegistry
+    from ..runtime.metrics import Metrics
+    from ..runtime.processor import RecordProcessor
+    from ..runtime.streams import StreamRegistry
+    from ..state import LocalCheckpointStore
 
     store = LocalCheckpointStore(root / "engine-ckpt")
     registry = StreamRegistry(config, store)
@@ -130,8 +130,8 @@ def _engine_seconds(config: DeploymentConfig, messages: list[bytes], root: Path)
 
 
 async def _service_seconds(config: DeploymentConfig, n: int) -> tuple[float, float, int]:
-    from .app import Service
-    from .transports.kafka import KafkaTransport
+    from ..runtime.app import Service
+    from ..transports.kafka import KafkaTransport
 
     stop = asyncio.Event()
     stamps: list[float] = []
@@ -170,9 +170,9 @@ def bench_service(
     messages: int = 30,
     bootstrap: str | None = None,
 ):
-    from .bench import SectionResult, Target
-    from .checkpoints import LocalCheckpointStore
-    from .streams import StreamRegistry
+    from ..runtime.streams import StreamRegistry
+    from ..state import LocalCheckpointStore
+    from .common import SectionResult, Target
 
     say = progress or (lambda _: None)
     feed = _messages(messages)

@@ -21,9 +21,9 @@ import orjson
 from filters import CompartmentalModel, simulate_season
 from schemas import DeploymentConfig, example_model_path, load_model_spec
 
-from .app import Service
-from .processor import Outcome
-from .transports import FileTransport
+from ..runtime.app import Service
+from ..runtime.processor import Outcome
+from ..transports import FileTransport
 
 __all__ = ["run_demo", "DEMO_STREAM", "CAUTION"]
 
@@ -180,3 +180,19 @@ def summarise_demo(out: Path, model, truth, counts1: dict, counts2: dict) -> str
         CAUTION,
     ]
     return "\n".join(lines) + "\n"
+
+
+def cmd_demo(args) -> int:
+    summary = run_demo(Path(args.out), days=args.days, particles=args.particles, seed=args.seed, quiet=args.quiet)
+    print(summary)
+    return 0
+
+
+def add_demo_parser(sub) -> None:
+    demo = sub.add_parser("demo", help="run a made-up season end to end over the file transport (no broker)")
+    demo.add_argument("--out", default="casecloud-demo", help="output directory (default: ./casecloud-demo)")
+    demo.add_argument("--days", type=int, default=120, help="days to simulate (default 120)")
+    demo.add_argument("--particles", type=int, default=2000, help="particles in the cloud (default 2000)")
+    demo.add_argument("--seed", type=int, default=7, help="seed of the hidden truth (default 7)")
+    demo.add_argument("--quiet", action="store_true", help="no progress lines")
+    demo.set_defaults(handler=cmd_demo)

@@ -3,7 +3,7 @@
 The history CSV (``schemas.load_history``) is replayed offline through the
 **same service path** as live data: every row becomes an observation message
 (``{"stream", "period", "counts"}``, empty cells as ``null``), the messages go
-through :class:`service.app.Service` on a :class:`MemoryTransport` with a
+through :class:`service.runtime.app.Service` on a :class:`MemoryTransport` with a
 temporary checkpoint directory, so validation, ordering, gap bridging, the
 filter step, the published estimates, the alert state machine and the
 checkpoints are exactly the service's. ``today`` is pinned to the day after the
@@ -204,9 +204,9 @@ def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizo
 
 # -------------------------------------------------------------------- replay
 def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path):
-    from .app import Service
-    from .checkpoints import LocalCheckpointStore
-    from .transports import MemoryTransport
+    from ..runtime.app import Service
+    from ..state import LocalCheckpointStore
+    from ..transports import MemoryTransport
 
     scfg = next(s for s in config.streams if s.id == stream_id)
     config = config.model_copy(
@@ -381,7 +381,7 @@ def run_backtest(
     scfg = next((s for s in config.streams if s.id == stream_id), None)
     if scfg is None:
         raise BacktestError(f"stream {stream_id!r} is not configured; configured: {sorted(s.id for s in config.streams)}")
-    from .streams import load_stream_model
+    from ..runtime.streams import load_stream_model
 
     observed = [s.name for s in load_stream_model(scfg).series]
     if not set(observed) & set(history.series):
@@ -568,7 +568,7 @@ def add_backtest_parser(sub) -> None:
 def run_backtest_command(args: argparse.Namespace) -> int:
     from schemas import SpecError, load_deployment_config, load_history
 
-    from .errors import ServiceError
+    from ..errors import ServiceError
 
     def fail(message: str, code: int) -> int:
         print(f"casecloud backtest: {message}", file=sys.stderr)

@@ -642,10 +642,15 @@ def _backtest_section(page: _Page, bt: dict[str, Any]) -> None:
 # ---------------------------------------------------------------- current-state page
 def build_checkpoint_report(checkpoint_dir: Path, stream: str | None, out: Path, model_path: str | None = None) -> Path:
     """Write ``out/index.html`` from a stream's newest readable checkpoint (read-only)."""
-    from filters import ParticleSet, effective_sample_size, normalised_weights, summarise
+    from filters import (
+        ParticleSet,
+        effective_sample_size,
+        normalised_weights,
+        summarise,
+    )
 
+    from ..state import CheckpointError, LocalCheckpointStore, model_fingerprint_of
     from . import report_figures as rf
-    from .checkpoints import CheckpointError, LocalCheckpointStore, model_fingerprint_of
 
     store = LocalCheckpointStore(checkpoint_dir)
     if not Path(checkpoint_dir).is_dir():

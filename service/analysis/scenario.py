@@ -133,11 +133,9 @@ def _checkpoint_store(config: Any, local: Any) -> tuple[Any, str]:
     settings = config.service
     kind = getattr(settings, "checkpoint_store", "local")
     if kind != "local":
-        from . import app
+        from ..state import build_checkpoint_store
 
-        build = getattr(app, "build_checkpoint_store", None)
-        if build is not None:
-            return build(config), f"checkpoint store {kind!r} ({getattr(settings, 'checkpoint_topic', '')})"
+        return build_checkpoint_store(config), f"checkpoint store {kind!r} ({getattr(settings, 'checkpoint_topic', '')})"
     return local(settings.checkpoint_dir, keep=settings.keep_checkpoints), str(settings.checkpoint_dir)
 
 
@@ -146,8 +144,8 @@ def run_scenario_command(args: argparse.Namespace) -> int:
     from filters import CompartmentalModel, ParticleFilter, run_scenarios
     from schemas import SpecError, load_deployment_config, load_scenario_file
 
-    from .checkpoints import CheckpointError, LocalCheckpointStore
-    from .streams import load_stream_model
+    from ..runtime.streams import load_stream_model
+    from ..state import CheckpointError, LocalCheckpointStore
 
     if args.trajectories < 1:
         return _fail(f"--trajectories must be >= 1, got {args.trajectories}", 2)
