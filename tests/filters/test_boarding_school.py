@@ -9,9 +9,15 @@ boys on most days; the checks below are loose enough for either.
 
 Published fits (from memory): Murray's deterministic SIR fit gives a contact rate r = 2.18e-3 per
 boy per day and a recovery rate a = 0.44 per day, i.e. beta = r N = 1.66 per day, R0 = 763 / 202
-= 3.8 and an infectious ("in bed") period of about 2.3 days; other SIR-type fits report R0 of
-roughly 3-4. Our intervals [2.5, 5] for R0 and [1.5, 3.5] days for the period are generous
-around those values but exclude, e.g., a seasonal-influenza-like R0 of 1.5-2 or a week in bed.
+= 3.8 and an infectious ("in bed") period of 1 / 0.44 = 2.3 days. Checks (figures seen while
+writing them, seed 1978: R0 median 3.60, 90 % interval [3.05, 4.45], posterior sd 0.43, ESS 127;
+period median 1.87 days, 90 % interval [1.68, 2.08], sd 0.13):
+- R0: Murray's 3.8 must lie inside our 90 % credible interval, widened only by the Monte Carlo
+  error of its end points; the interval must exclude a seasonal-influenza-like R0 of 2.
+- period: our stochastic fit with negative-binomial noise puts it 0.4 days (3 posterior sds)
+  below Murray's deterministic fit, a model difference, not Monte Carlo error; the median must
+  be within 0.5 days of 2.3 (tightened from the former [1.5, 3.5] band), which rejects a
+  one-day or a three-day period.
 
 Model (a modelling choice, justified here): a two-parameter stochastic SIR with N = 763 and one
 initial infective on day 0 (21 January); the observed count is the prevalence of I. Binomial
@@ -28,17 +34,20 @@ import tomllib
 
 import numpy as np
 import pytest
-from scipy import stats
-
 from filters import (
     CalibrationSettings,
     CompartmentalModel,
     Observation,
     calibrate,
     calibration_parameters,
+    mcmc_ess,
     one_step_intervals,
 )
 from schemas import ModelSpec
+
+# Murray's deterministic fit (from memory, see above): R0 = 3.8, period 1 / 0.44 days.
+MURRAY_R0 = 3.8
+MURRAY_PERIOD = 1 / 0.44
 
 IN_BED = [3, 8, 28, 75, 221, 281, 255, 235, 190, 125, 70, 28, 12, 5]  # days 1-14, from memory (see above)
 
@@ -109,8 +118,14 @@ def test_r0_and_infectious_period_match_published_fits(fitted):
     period = 1 / result.pooled("gamma")
     r0_lo, r0_mid, r0_hi = np.quantile(r0, [0.05, 0.5, 0.95])
     p_lo, p_mid, p_hi = np.quantile(period, [0.05, 0.5, 0.95])
-    assert 2.5 <= r0_mid <= 5.0, (r0_lo, r0_mid, r0_hi)
-    assert 1.5 <= p_mid <= 3.5, (p_lo, p_mid, p_hi)
+    # Monte Carlo error of a tail quantile of the draws, about 2.5 x sd / sqrt(ESS) for a 5 %
+    # quantile of a roughly normal posterior (asymptotic variance p (1 - p) / (ESS f(q)^2)).
+    ess_r0 = float(mcmc_ess(r0.reshape(result.draws.shape[0], -1)[:, :, None])[0])
+    q_err = 2.5 * r0.std() / math.sqrt(ess_r0)
+    assert r0_lo - 2 * q_err <= MURRAY_R0 <= r0_hi + 2 * q_err, (r0_lo, r0_mid, r0_hi, q_err)
+    assert r0_lo - 2 * q_err > 2.0, (r0_lo, q_err)  # excludes a seasonal-influenza-like R0
+    # A cross-model allowance, not Monte Carlo error (module docstring): 0.5 day.
+    assert abs(p_mid - MURRAY_PERIOD) <= 0.5, (p_lo, p_mid, p_hi)
     # The 90 % intervals are informative (the data pin R0 down far more than the prior does).
     assert r0_hi - r0_lo < 2.5 and p_hi - p_lo < 1.5
 
@@ -129,7 +144,7 @@ def test_one_day_ahead_90_percent_intervals_cover_most_days(fitted):
     params = calibration_parameters(model)
     intervals = one_step_intervals(model, obs, params, result.central_theta(), 1000, np.random.default_rng(4), 0.9)
     covered = sum(iv["in_bed"][0] <= y <= iv["in_bed"][1] for iv, y in zip(intervals, IN_BED))
-    # Calibrated 90 % intervals cover 12.6 of 14 days on average; if days were independent,
-    # P(Binomial(14, 0.9) <= 9) = 0.009 (successive days are correlated, so treat this as a guide).
-    assert stats.binom.cdf(9, 14, 0.9) == pytest.approx(0.0092, abs=0.0005)
+    # Calibrated 90 % intervals cover 12.6 of 14 days on average; if days were independent a
+    # false failure (9 or fewer covered) has probability P(Binomial(14, 0.9) <= 9) = 0.009
+    # (successive days are correlated, so treat this as a guide).
     assert covered >= 10, list(zip(intervals, IN_BED))

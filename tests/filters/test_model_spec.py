@@ -154,10 +154,8 @@ def _bad_expressions(sentinel: Path) -> list[tuple[str, str]]:
 def test_expression_compiler_refuses_and_runs_nothing(tmp_path, label):
     sentinel = tmp_path / "SENTINEL"
     source = dict(_bad_expressions(sentinel))[label]
-    compiled = None
     with pytest.raises(ExpressionError) as info:
-        compiled = compile_expression(source, {"x", "beta"})
-    assert compiled is None
+        compile_expression(source, {"x", "beta"})
     msg = str(info.value)
     assert source in msg or repr(source) in msg  # names what was given
     assert "allowed" in msg or "takes" in msg  # says what is allowed instead
@@ -285,20 +283,28 @@ def test_every_problem_is_reported_at_once(tmp_path):
 
 
 @pytest.mark.parametrize(
-    "label, old, new",
+    "label, old, new, expected",
     [
-        ("cross_reference", 'to = "I"\nrate = "beta * foi"', 'to = "Q"\nrate = "beta * foi"'),
-        ("field", "population = 100000", "population = -5"),
-        ("toml", "population = 100000", "population = = 100000"),
+        # (field path, what was given, what is allowed), each as it must appear in the problem text.
+        ("cross_reference", 'to = "I"\nrate = "beta * foi"', 'to = "Q"\nrate = "beta * foi"',
+         ("flows[0].to", "given 'Q'", "allowed: ['S', 'I', 'R']")),
+        ("field", "population = 100000", "population = -5",
+         ("groups[0].population", "given -5", "greater than 0")),
+        ("toml", "population = 100000", "population = = 100000",
+         ("not valid TOML", "line 9, column 14", "Invalid value")),
     ],
 )
-def test_nothing_half_built_is_returned(tmp_path, label, old, new):
-    path = _write(tmp_path, label, _edit(_example_text("sir"), old, new))
-    result = None
-    with pytest.raises(SpecError) as info:
-        result = schemas.load_model_spec(path)
-    assert result is None
-    exc = info.value
+def test_nothing_half_built_is_returned(tmp_path, label, old, new, expected):
+    text = _edit(_example_text("sir"), old, new)
+    path = _write(tmp_path, label, text)
+    exc = _load_error(path)
+    # The refusal says where, what was given and what is allowed (the line is found in the edited text).
+    assert len(exc.problems) == 1, exc.problems
+    problem = exc.problems[0]
+    for part in expected:
+        assert part in problem, (part, problem)
+    if label != "toml":
+        assert f"{path}:{_line_of(text, re.escape(new.splitlines()[0]))}:" in problem, problem
     # The error carries text only: no spec object, no pydantic error chained as cause.
     assert all(isinstance(p, str) for p in exc.problems)
     assert exc.__cause__ is None and exc.__suppress_context__
@@ -311,8 +317,6 @@ def test_nothing_half_built_is_returned(tmp_path, label, old, new):
 def test_model_compile_failure_returns_nothing(tmp_path):
     text = _edit(_example_text("sir"), 'rate = "gamma"', 'rate = "gamma[0]"')
     spec = schemas.load_model_spec(_write(tmp_path, "subscript", text))
-    model = None
     with pytest.raises(ModelError) as info:
-        model = CompartmentalModel(spec)
-    assert model is None
+        CompartmentalModel(spec)
     assert "'gamma[0]'" in str(info.value) and "flows[1] (recovery).rate" in str(info.value)

@@ -12,6 +12,8 @@ import uuid
 import pytest
 from aiokafka import AIOKafkaConsumer, AIOKafkaProducer
 
+pytestmark = pytest.mark.integration  # starts the broker: excluded by -m "not integration"
+
 IO_TIMEOUT = 60.0  # seconds for any one client round trip
 
 

@@ -9,6 +9,12 @@ counters, the target's health, the rules' health, the recording rules'
 output, and one alert that really fires (a filter collapse, whose counter is
 born at its first increment: the case ``increase()`` alone cannot see).
 
+The observations reach the service on its standard input in two parts: the
+second part only after Prometheus has stored the first, so the step-latency
+histogram grows inside the scraped window and its p95 must be a number (were
+every step taken before the first scrape, the rate would be 0/0 = NaN and
+prove nothing).
+
 Both processes are killed at the end, also when the test fails.
 """
 
@@ -38,6 +44,7 @@ RULES = REPO / "deploy" / "prometheus" / "casecloud-rules.yml"
 COLLAPSING, STEADY = "coastal-collapse", "inland-steady"
 DAYS = 12
 COLLAPSE_DAY = 8
+FIRST_PART_DAYS = 4  # days sent before Prometheus has scraped; the rest after
 
 # SIR in a town of 2000 with binomial reporting: a reported count above the
 # day's new infections has probability zero under every particle, so an
@@ -150,21 +157,25 @@ def _wait(predicate, timeout: float, what: str, logs: list[Path], procs: list[su
                          + "\n".join(f"--- {p.name} ---\n{_tail(p)}" for p in logs))
 
 
-def _observations() -> bytes:
+def _observations(days: range) -> bytes:
     lines = []
-    for day in range(1, DAYS + 1):
+    for day in days:
         period = f"2025-09-{day + 1:02d}"
         lines.append({"stream": STEADY, "period": period, "counts": {"cases": 0}})
         lines.append({"stream": COLLAPSING, "period": period, "counts": {"cases": 1500 if day == COLLAPSE_DAY else 0}})
-    body = b"\n".join(json.dumps(line).encode() for line in lines)
-    return body + b'\n{"stream": "inland-steady", "period": "2025-09-30", "counts": {"cases": 3\n'  # malformed
+    return b"".join(json.dumps(line).encode() + b"\n" for line in lines)
+
+
+FIRST_PART = _observations(range(1, FIRST_PART_DAYS + 1))
+SECOND_PART = (_observations(range(FIRST_PART_DAYS + 1, DAYS + 1))
+               + b'{"stream": "inland-steady", "period": "2025-09-30", "counts": {"cases": 3\n')  # malformed
 
 
 @pytest.fixture
 def casecloud_service(tmp_path):
-    """``casecloud serve`` over the file transport; yields (port, out_dir, log)."""
+    """``casecloud serve`` over the file transport reading stdin; yields (port, out_dir, log, process).
+    The first part of the observations is written at once; the test writes the rest."""
     (tmp_path / "sir_binomial_town.toml").write_text(SPEC)
-    (tmp_path / "observations.ndjson").write_bytes(_observations())
     streams = "".join(
         f'\n[[streams]]\nid = "{s}"\nmodel = "sir_binomial_town.toml"\nstart = "2025-09-01"\n'
         f"particles = 200\nforecast_trajectories = 50\n"
@@ -174,20 +185,24 @@ def casecloud_service(tmp_path):
     config.write_text(
         'transport = "file"\n\n[service]\nseed = 7\ncheckpoint_dir = "checkpoints"\n\n'
         '[metrics]\nhost = "127.0.0.1"\nport = 0\n\n'
-        '[file]\ninput = "observations.ndjson"\noutput_dir = "out"\n' + streams
+        '[file]\noutput_dir = "out"\n' + streams
     )
     log = tmp_path / "casecloud.log"
     with open(log, "wb") as out:
         proc = subprocess.Popen(
             [sys.executable, "-m", "service.cli", "serve", "--config", str(config)],
-            stdout=out, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+            stdout=out, stderr=subprocess.STDOUT, stdin=subprocess.PIPE,
             env=dict(os.environ, PYTHONUNBUFFERED="1"), cwd=tmp_path,
         )
+    proc.stdin.write(FIRST_PART)
+    proc.stdin.flush()
     try:
         match = _wait(lambda: re.search(r"metrics on http://127\.0\.0\.1:(\d+)/metrics", log.read_text()),
                       60, "the service's metrics address", [log], [proc])
         yield int(match.group(1)), tmp_path / "out", log, proc
     finally:
+        if not proc.stdin.closed:
+            proc.stdin.close()
         _stop(proc)
 
 
@@ -240,6 +255,15 @@ def test_prometheus_scrapes_the_service_and_evaluates_the_rules(casecloud_servic
     base, prom_log, prom_proc = prometheus_server
     logs, procs = [prom_log, service_log], [prom_proc, service_proc]
 
+    # The first part is applied, and Prometheus has stored it, before the rest is sent.
+    def processed() -> dict[str, float]:
+        return {r["metric"]["stream"]: float(r["value"][1]) for r in _query(base, "casecloud_messages_processed_total")}
+
+    first = {COLLAPSING: FIRST_PART_DAYS, STEADY: FIRST_PART_DAYS}
+    _wait(lambda: processed() == first, 60, "the first part's counters in Prometheus", logs, procs)
+    service_proc.stdin.write(SECOND_PART)
+    service_proc.stdin.close()
+
     # The service applies every observation (the collapse included) and dead-letters the broken line.
     def applied() -> int:
         path = out_dir / "estimates.ndjson"
@@ -252,9 +276,6 @@ def test_prometheus_scrapes_the_service_and_evaluates_the_rules(casecloud_servic
     assert collapsed == [(COLLAPSING, f"2025-09-{COLLAPSE_DAY + 1:02d}")]
 
     # 1. The counter as Prometheus stored it, per stream, equals what the service wrote.
-    def processed() -> dict[str, float]:
-        return {r["metric"]["stream"]: float(r["value"][1]) for r in _query(base, "casecloud_messages_processed_total")}
-
     got = _wait(lambda: (lambda p: p if p == {COLLAPSING: DAYS, STEADY: DAYS} else None)(processed()),
                 60, "casecloud_messages_processed_total in Prometheus", logs, procs)
     assert got == {COLLAPSING: DAYS, STEADY: DAYS}
@@ -292,12 +313,16 @@ def test_prometheus_scrapes_the_service_and_evaluates_the_rules(casecloud_servic
           60, "the update-age recording rule", logs, procs)
     _wait(lambda: recorded("reason:casecloud_messages_dead_lettered:rate30m", "reason") == {"malformed_json"},
           60, "the dead-letter recording rule", logs, procs)
-    p95 = _wait(lambda: _query(base, "stream:casecloud_step_duration_seconds:p95_rate10m") or None,
-                60, "the step-latency recording rule", logs, procs)
+    def p95_numbers():  # the rule is evaluated every second: wait for an evaluation after the second part
+        result = _query(base, "stream:casecloud_step_duration_seconds:p95_rate10m")
+        ok = len(result) == 2 and not any(math.isnan(float(r["value"][1])) for r in result)
+        return result if ok else None
+
+    p95 = _wait(p95_numbers, 60, "the step-latency recording rule to give numbers", logs, procs)
     assert {r["metric"]["stream"] for r in p95} == {COLLAPSING, STEADY}
-    for r in p95:  # NaN once no step happened in the window, else a duration within the histogram's range
+    for r in p95:  # steps were taken inside the window (second part), so a duration, never NaN
         value = float(r["value"][1])
-        assert math.isnan(value) or 0 < value <= 30
+        assert 0 < value <= 30, (r["metric"], value)
 
     # 5. The collapse alert fires for the collapsed stream only, in real Prometheus too.
     def firing():
