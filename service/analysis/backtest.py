@@ -79,6 +79,7 @@ import hashlib
 import math
 import sys
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -203,7 +204,7 @@ def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizo
 
 
 # -------------------------------------------------------------------- replay
-def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path):
+def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
     from ..runtime.app import Service
     from ..state import LocalCheckpointStore
     from ..transports import MemoryTransport
@@ -232,7 +233,12 @@ def _replay(config, history, stream_id: str, horizons: list[int], trajectories: 
     hmax = max(horizons)
     cols = [h - 1 for h in horizons]
 
+    handled = [0]
+
     def hook(outcome) -> None:
+        handled[0] += 1
+        if progress is not None:
+            progress(handled[0], len(messages))
         if outcome.status != "applied" or outcome.stream != stream_id:
             return
         runtime = service.registry.runtimes[stream_id]
@@ -368,13 +374,15 @@ def run_backtest(
     horizons: list[int] = (1, 7, 14),  # type: ignore[assignment]
     trajectories: int | None = None,
     checkpoint_dir: Path | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> dict[str, Any]:
     """Replay ``history`` through the service for ``stream_id`` and score it; returns the
     ``backtest.json`` document (see the module docstring) plus a private ``_replay`` entry
     (service counts, published estimates and alerts, dead-letter reasons) that is not written.
 
     ``checkpoint_dir``: where the replay's checkpoints go (must be empty or absent); default a
-    temporary directory removed afterwards."""
+    temporary directory removed afterwards. ``progress(done, total)``, if given, is called after
+    each history row the service has handled (the replay is nearly all of the time)."""
     horizons = sorted({int(h) for h in horizons})
     if not horizons or horizons[0] < 1 or horizons[-1] > 90:
         raise BacktestError(f"horizons must be whole days in 1..90, got {horizons}")
@@ -395,7 +403,7 @@ def run_backtest(
         raise BacktestError(f"checkpoint directory {checkpoint_dir} is not empty; a backtest replays from scratch")
     with tempfile.TemporaryDirectory(prefix="casecloud-backtest-") as tmp:
         where = Path(checkpoint_dir) if checkpoint_dir is not None else Path(tmp)
-        model, scfg, series_names, origins, estimates, alerts, dead, counts = _replay(config, history, stream_id, horizons, m, where)
+        model, scfg, series_names, origins, estimates, alerts, dead, counts = _replay(config, history, stream_id, horizons, m, where, progress)
     seed = config.service.seed
     first = history.dates[0]
     per_origin: list[dict[str, Any]] = []
@@ -568,6 +576,7 @@ def add_backtest_parser(sub) -> None:
 def run_backtest_command(args: argparse.Namespace) -> int:
     from schemas import SpecError, load_deployment_config, load_history
 
+    from ..console import Progress
     from ..errors import ServiceError
 
     def fail(message: str, code: int) -> int:
@@ -577,7 +586,9 @@ def run_backtest_command(args: argparse.Namespace) -> int:
     try:
         config = load_deployment_config(args.config)
         history = load_history(args.history)
-        result = run_backtest(config, history, args.stream, args.horizons, args.trajectories)
+        with Progress("backtest", len(history), "history rows") as shown:
+            result = run_backtest(config, history, args.stream, args.horizons, args.trajectories,
+                                  progress=lambda done, total: shown.update(done, total))
     except (SpecError, BacktestError) as exc:
         return fail(str(exc), 2)
     except ServiceError as exc:

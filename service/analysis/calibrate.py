@@ -18,9 +18,8 @@ import io
 import json
 import os
 import sys
-import time
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 
 import numpy as np
 import orjson
@@ -42,6 +41,8 @@ from schemas import (
     load_history,
     load_model_spec,
 )
+
+from ..console import Progress
 
 __all__ = ["StateDirectory", "add_calibrate_parser", "run_calibrate_command", "history_observations", "write_outputs", "render_summary"]
 
@@ -129,21 +130,8 @@ def add_calibrate_parser(sub: Any) -> None:
                    help="iterations before the proposal adapts to each chain's history (default 100)")
     p.add_argument("--seed", type=int, default=0, help="seed of the chains (default 0)")
     p.add_argument("--out", default="casecloud-calibration", help="output and state directory")
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--quiet", action="store_true", help="no progress display")
     p.set_defaults(handler=run_calibrate_command)
-
-
-def _progress_bar(stream: TextIO, width: int = 30):
-    started = time.monotonic()
-
-    def show(done: int, total: int) -> None:
-        frac = done / total if total else 1.0
-        filled = int(round(width * frac))
-        elapsed = time.monotonic() - started
-        print(f"\rcalibrate [{'#' * filled}{'.' * (width - filled)}] {done}/{total} iterations ({elapsed:.0f} s)",
-              end="\n" if done >= total else "", file=stream, flush=True)
-
-    return show
 
 
 def write_outputs(result: CalibrationResult, out: Path) -> dict[str, Path]:
@@ -223,11 +211,18 @@ def run_calibrate_command(args: argparse.Namespace) -> int:
         print(f"casecloud calibrate: {exc}", file=sys.stderr)
         return 2
     out = Path(args.out)
-    progress = None if args.quiet else _progress_bar(sys.stderr)
+    shown = Progress("calibrate", settings.chains * settings.iterations, "iterations", enabled=not args.quiet)
     print(f"casecloud calibrate: {len(observations)} periods from {args.history}, static parameters "
           f"{[p.name for p in params]}; state in {out}", file=sys.stderr)
+    # The log-evidence noise check runs after the last iteration: say so while it runs.
+    noise = f"now {settings.noise_repeats} filter runs to measure log-evidence noise" if settings.noise_repeats else None
+
+    def progress(done: int, total: int) -> None:
+        shown.update(done, total, note=noise if done >= total else None)
+
     try:
-        result = calibrate(model, observations, settings, params, state=StateDirectory(out), progress=progress)
+        with shown:
+            result = calibrate(model, observations, settings, params, state=StateDirectory(out), progress=progress)
     except CalibrationStateError as exc:
         print(f"casecloud calibrate: {exc}", file=sys.stderr)
         return 2

@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import orjson
 
+from ..console import Progress
 from .common import SectionResult
 from .forecast import bench_forecast
 from .update import bench_update
@@ -54,11 +55,14 @@ def run_bench(
     sections: tuple[str, ...] = ("update",),
     progress: Callable[[str], None] | None = None,
     options: dict[str, dict[str, Any]] | None = None,
+    shown: Progress | None = None,
 ) -> dict[str, Any]:
     """Run the named sections and return one JSON-able report.
 
     ``options`` maps a section name to extra keyword arguments of its function
     (e.g. ``{"update": {"naive_particles": 50, "warmup_days": 5}}``).
+    ``progress(message)`` receives the sections' messages; ``shown``, if given,
+    counts finished sections, with the section and its latest message as the note.
     """
     if particles < 1:
         raise ValueError(f"particles must be at least 1, got {particles}")
@@ -69,14 +73,26 @@ def run_bench(
         raise ValueError(f"unknown bench section(s) {unknown}; allowed: {sorted(SECTIONS)}")
     report: dict[str, Any] = {"bench_format": BENCH_FORMAT, "environment": _environment(), "sections": list(sections)}
     targets: dict[str, Any] = {}
-    for name in sections:
+    for done, name in enumerate(sections):
         extra = (options or {}).get(name, {})
+        say = progress
+        if shown is not None:
+            shown.update(done, len(sections), note=name)
+
+            def say(message: str, name: str = name, done: int = done) -> None:
+                shown.update(done, note=f"{name}: {message}")
+                if progress is not None:
+                    progress(message)
+
         try:
-            result = SECTIONS[name](particles=particles, repeats=repeats, progress=progress, **extra)
+            result = SECTIONS[name](particles=particles, repeats=repeats, progress=say, **extra)
         except Exception as exc:  # a section that cannot run is reported, not hidden
             report[name] = {"error": f"{type(exc).__name__}: {exc}"}
             targets[f"{name}.ran"] = {"value": 0.0, "min": 1.0, "pass": False, "note": "section failed to run"}
             continue
+        finally:
+            if shown is not None:
+                shown.update(done + 1, note=f"{name} finished")
         if name == PRIMARY_SECTION:
             report.update(result.figures)
         else:
@@ -165,13 +181,13 @@ def run_bench_command(args: argparse.Namespace) -> int:
     if particles < 1 or repeats < 1:
         print(f"casecloud bench: --particles and --repeats must be >= 1 (given {particles}, {repeats})", file=sys.stderr)
         return 2
-    progress = None if as_json else (lambda msg: print(f"  ... {msg}", file=sys.stderr, flush=True))
     sections = tuple(x for x in getattr(args, "sections", "update").split(",") if x)
     options: dict[str, dict[str, Any]] = {}
     if getattr(args, "kafka_bootstrap", None):
         options["service"] = {"bootstrap": args.kafka_bootstrap}
     try:
-        report = run_bench(particles=particles, repeats=repeats, progress=progress, sections=sections, options=options)
+        with Progress("bench", len(sections), "sections") as shown:
+            report = run_bench(particles=particles, repeats=repeats, sections=sections, options=options, shown=shown)
     except ValueError as exc:
         print(f"casecloud bench: {exc}", file=sys.stderr)
         return 2

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import orjson
 
-from ..console import load_config
+from ..console import Progress, load_config
 
 __all__ = ["add_runtime_parsers"]
 
@@ -26,25 +26,56 @@ async def _serve(config, transport, until_exhausted: bool, progress=None) -> dic
     return await service.run(stop, until_exhausted=until_exhausted)
 
 
-def _progress_printer(every: int = 100):
-    seen = {"n": 0}
+def _count_lines(path: Path) -> int:
+    """Lines in a file, a last line without a newline included (each is one record of the file transport)."""
+    lines, last = 0, b"\n"
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            lines += chunk.count(b"\n")
+            last = chunk[-1:]
+    return lines + (last != b"\n")
+
+
+def _replay_progress(transport, total: int, shown):
+    """An ``on_outcome`` hook showing how far into the input file the replay is.
+
+    The file transport's offset is the line number, so the position is the
+    offset after the last record read; a replay resumed part-way starts there.
+    """
+    receive = transport.receive
+    position = {"next": 0}
+
+    async def receive_and_note(timeout: float = 1.0):
+        record = await receive(timeout)
+        if record is not None:
+            position["next"] = record.offset + 1
+        return record
+
+    transport.receive = receive_and_note
 
     def show(outcome) -> None:
-        seen["n"] += 1
-        if seen["n"] % every == 0:
-            print(f"casecloud: {seen['n']} records handled", file=sys.stderr, flush=True)
+        shown.update(position["next"], total)
 
     return show
 
 
-def _run_service(config, transport, until_exhausted: bool, progress=None) -> int:
+def _run_service(config, transport, until_exhausted: bool, progress=None, shown=None) -> int:
     from ..errors import ServiceError
+
+    def end_progress() -> None:  # before anything else is printed, so a terminal's progress line is ended
+        if shown is not None:
+            shown.finish()
 
     try:
         counts = asyncio.run(_serve(config, transport, until_exhausted, progress))
     except ServiceError as exc:
+        end_progress()
         print(f"casecloud: {exc}", file=sys.stderr)
         return 1
+    except BaseException:
+        end_progress()
+        raise
+    end_progress()
     print(orjson.dumps(counts).decode(), file=sys.stderr)
     return 0
 
@@ -69,7 +100,14 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if args.checkpoint_dir:
         config = config.model_copy(update={"service": config.service.model_copy(update={"checkpoint_dir": Path(args.checkpoint_dir)})})
     config = config.model_copy(update={"metrics": config.metrics.model_copy(update={"enabled": False})})
-    return _run_service(config, FileTransport(Path(args.input), out), until_exhausted=True, progress=_progress_printer())
+    source = Path(args.input)
+    try:
+        total = _count_lines(source)
+    except OSError:
+        total = 0  # the transport reports the unreadable input as before
+    transport = FileTransport(source, out)
+    shown = Progress("replay", total, "lines")
+    return _run_service(config, transport, until_exhausted=True, progress=_replay_progress(transport, total, shown), shown=shown)
 
 
 def cmd_schemas(args: argparse.Namespace) -> int:

@@ -36,11 +36,13 @@ def run(tmp_path, capsys, *extra: str):
     return code, captured.out, captured.err
 
 
-def test_tiny_run_writes_draws_summary_and_prior_block_and_resumes(tmp_path, capsys):
+def test_tiny_run_writes_draws_summary_and_prior_block_and_resumes(tmp_path, capsys, monkeypatch):
+    # Progress lines at every update (not every 5 s), so the counts can be checked (console.Progress).
+    monkeypatch.setattr("service.console.PROGRESS_INTERVAL", 0.0)
     write_history(tmp_path / "counts.csv")
     code, out, err = run(tmp_path, capsys, "--iterations", "40")
     assert code == 0, err
-    assert "calibrate [" in err and "80/80 iterations" in err  # progress bar on stderr
+    assert "calibrate: 80/80 iterations (100%), done in" in err  # progress on stderr
     assert "beta" in out and "R-hat" in out and "log-evidence noise" in out and "Cautions" in out
     d = tmp_path / "out"
     rows = list(csv.DictReader((d / "draws.csv").read_text().splitlines()))
@@ -62,7 +64,8 @@ def test_tiny_run_writes_draws_summary_and_prior_block_and_resumes(tmp_path, cap
     # Same directory, more iterations: the saved 40 are kept and 20 more run.
     code, out, err = run(tmp_path, capsys, "--iterations", "60")
     assert code == 0, err
-    assert "80/120" in err and "120/120" in err
+    # The resumed run starts its count at the saved 80 of 120, not at 0.
+    assert "calibrate: 80/120 iterations" in err and "calibrate: 120/120 iterations (100%), done in" in err
     resumed = list(csv.DictReader((d / "draws.csv").read_text().splitlines()))
     assert len(resumed) == 2 * 50
     first = {(r["chain"], r["iteration"]): r["beta"] for r in rows}
