@@ -122,7 +122,10 @@ class Progress:
             text = f"{self.label}: {self._count()}, {ended} {elapsed}"
         else:
             left = self.remaining(now)
-            eta = "time left not yet known" if left is None else f"about {format_duration(left)} left"
+            if left is None:
+                eta = "time left not yet known"
+            else:
+                eta = f"about {format_duration(left)} left" if left >= 0.5 else "less than a second left"
             text = f"{self.label}: {self._count()}, {eta}, {elapsed} elapsed"
         return text + (f"; {self.note}" if self.note else "")
 

@@ -1,0 +1,150 @@
+"""From ``casecloud demo`` to every other command without writing a file by hand.
+
+The demo runs as a newcomer would run it: the installed ``casecloud`` console
+script, in a subprocess, from a working directory of its own; its output
+directory has a space in its name (``runs/first try``) so unquoted paths in
+the printed commands would break. Each command of the demo's closing lines is
+then split as a POSIX shell would (``shlex``) and run verbatim, from the same
+directory, with the same console script. The demo is small (40 days, 200
+particles) and the printed commands use their printed options: the calibrate
+line carries its own short-trial options, the others run at their defaults.
+"""
+
+from __future__ import annotations
+
+import shlex
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import orjson
+import pytest
+
+from schemas import example_model_path, example_scenario_path, load_deployment_config, load_history, load_model_spec
+from service.analysis.demo import CONFIG_NAME, DEMO_STREAM, HISTORY_NAME, SCENARIO_EXAMPLE, _start_afresh
+from service.cli import build_parser, main
+
+pytestmark = pytest.mark.slow  # the demo and five commands: about half a minute
+
+CASECLOUD = Path(sys.executable).with_name("casecloud")  # the console script installed beside this Python
+OUT = "runs/first try"
+# Each printed command and what it must leave behind (relative to the demo's directory).
+EXPECTED = {
+    "report": ["report/index.html"],
+    "checkpoint": [],  # prints only
+    "scenario": ["scenarios/scenarios.json", "scenarios/scenarios.csv", "scenarios/scenarios_daily.csv"],
+    "backtest": ["backtest/backtest.json", "backtest/scores.csv", "backtest/per_origin.csv"],
+    "calibrate": ["calibration/draws.csv", "calibration/summary.json", "calibration/prior.toml"],
+}
+
+
+def _casecloud(argv: list[str], cwd: Path) -> subprocess.CompletedProcess:
+    assert CASECLOUD.exists(), f"no console script at {CASECLOUD}: install the project (pip install -e .)"
+    return subprocess.run([str(CASECLOUD), *argv], cwd=cwd, capture_output=True, text=True, timeout=600)
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> dict:
+    cwd = tmp_path_factory.mktemp("newcomer")
+    run = _casecloud(["demo", "--out", OUT, "--days", "40", "--particles", "200", "--quiet"], cwd)
+    assert run.returncode == 0, run.stderr
+    commands = [line.strip() for line in run.stdout.splitlines() if line.startswith("  casecloud ")]
+    return {"cwd": cwd, "out": cwd / OUT, "stdout": run.stdout, "commands": commands}
+
+
+def test_the_closing_lines_are_the_five_next_commands(demo):
+    lines = demo["stdout"].rstrip("\n").splitlines()
+    # The commands close the output (after the cautions), so they are what a newcomer sees last.
+    assert lines[-1].startswith("  casecloud calibrate ")
+    assert [shlex.split(c)[1] for c in demo["commands"]] == list(EXPECTED)
+    # Bug caught: a printed command that no longer parses (an option renamed or dropped).
+    parser = build_parser()
+    for command in demo["commands"]:
+        parser.parse_args(shlex.split(command)[1:])
+
+
+@pytest.mark.parametrize("name", list(EXPECTED))
+def test_each_printed_command_runs_verbatim_from_the_same_directory(demo, name):
+    command = next(c for c in demo["commands"] if shlex.split(c)[1] == name)
+    argv = shlex.split(command)
+    assert argv[0] == "casecloud"
+    run = _casecloud(argv[1:], demo["cwd"])
+    # Bug caught: a path the printed command cannot find from here (unquoted space, relative to the
+    # wrong directory, a file the demo does not write), or a command that fails on the demo's files.
+    assert run.returncode == 0, f"{command}\n{run.stderr}"
+    for name_ in EXPECTED[name]:
+        assert (demo["out"] / name_).is_file(), f"{command} did not write {name_}"
+    assert run.stdout.strip()
+    if name == "checkpoint":
+        # The summary reads the header keys the service really writes.
+        estimates = [orjson.loads(x) for x in (demo["out"] / "estimates.ndjson").read_bytes().splitlines()]
+        out = run.stdout
+        assert out.startswith(f"stream {DEMO_STREAM}\n")
+        assert f"  step           {len(estimates)} (records assimilated)" in out
+        assert f"  last period    {estimates[-1]['period']} (model day {estimates[-1]['day']}; model seir_two_band" in out
+        assert "  particles      200; effective sample size " in out
+        assert "  alerts         child_ed_surge: " in out
+        assert "observations.ndjson partition 0, offset " in out
+
+
+def test_config_loads_from_anywhere_and_points_at_the_demo_files(demo, tmp_path, monkeypatch):
+    out = demo["out"]
+    text = (out / CONFIG_NAME).read_text(encoding="utf-8")
+    # Bug caught: absolute paths baked in, so the directory cannot be moved or shared.
+    assert str(demo["cwd"]) not in text
+    monkeypatch.chdir(tmp_path)  # somewhere else entirely
+    config = load_deployment_config(out / CONFIG_NAME, environ={})
+    assert config.file.input.resolve() == (out / "observations.ndjson").resolve()
+    assert config.file.output_dir.resolve() == out.resolve()
+    assert config.service.checkpoint_dir.resolve() == (out / "checkpoints").resolve()
+    assert config.transport == "file" and [s.id for s in config.streams] == [DEMO_STREAM]
+    assert config.streams[0].particles == 200  # the demo's --particles: the config it really ran with
+
+    # Moved (copied) as a whole, it describes the copy: checkpoint show finds the copy's checkpoint.
+    moved = shutil.copytree(out, tmp_path / "moved demo")
+    assert main(["checkpoint", "show", "--config", str(moved / CONFIG_NAME)]) == 0
+
+
+def test_history_csv_is_the_clean_feed(demo):
+    out = demo["out"]
+    spec = load_model_spec(example_model_path("seir_two_band"))
+    history = load_history(out / HISTORY_NAME, allowed_series=[s.name for s in spec.series])
+    feed: dict[str, dict] = {}
+    for line in (out / "observations.ndjson").read_bytes().splitlines():
+        try:
+            message = orjson.loads(line)
+        except orjson.JSONDecodeError:
+            continue  # the feed's deliberately truncated line
+        if all(v >= 0 for v in message["counts"].values()):  # and its negative count
+            feed[message["period"]] = message["counts"]
+    # Bug caught: the CSV built from the feed with its mistakes (a re-sent day twice, a negative
+    # count), or with series in a different order from the header.
+    assert history.periods == sorted(feed) and len(history) == 40
+    assert [dict(v) for v in history.values] == [feed[p] for p in history.periods]
+
+
+def test_the_example_scenario_file_names_the_demo_stream_and_files(demo):
+    shipped = example_scenario_path(SCENARIO_EXAMPLE)
+    assert (demo["out"] / shipped.name).read_bytes() == shipped.read_bytes()
+    comment = " ".join(line.lstrip("# ").rstrip("\\ ") for line in shipped.read_text().splitlines() if line.startswith("#"))
+    argv = shlex.split(comment[comment.index("casecloud scenario") :].split(" Every run")[0])
+    options = dict(zip(argv[2::2], argv[3::2]))
+    default_out = build_parser().parse_args(["demo"]).out
+    # Bug caught: the comment naming a stream id or file the demo does not have.
+    assert options == {
+        "--config": f"{default_out}/{CONFIG_NAME}",
+        "--stream": DEMO_STREAM,
+        "--scenarios": f"{default_out}/{shipped.name}",
+    }
+
+
+def test_a_new_demo_drops_calibration_chains_of_the_old_feed_only(tmp_path):
+    calibration = tmp_path / "calibration"
+    calibration.mkdir()
+    for name in ("pmmh_state.json", "pmmh_chain.npy", "summary.json", "my notes.txt"):
+        (calibration / name).write_text("x")
+    _start_afresh(tmp_path)
+    # Bug caught: the printed calibrate command refused after a demo re-run with other --days
+    # (saved chains of another feed), or the demo deleting files it did not make.
+    assert sorted(p.name for p in calibration.iterdir()) == ["my notes.txt", "summary.json"]
