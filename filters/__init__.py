@@ -12,7 +12,9 @@ from ._interventions import DayEffects, Effects, InterventionError, compile_inte
 from ._linear_gaussian import LocalLevelModel
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
+from ._nowcast import NowcastEntry, nowcast
 from ._particles import ParticleSet
+from ._reports import Report, reporting_cdf
 from ._pmmh import (
     CalibrationParameter,
     CalibrationResult,
@@ -91,6 +93,10 @@ __all__ = [
     "ObservationError",
     "ParticleFilter",
     "ParticleSet",
+    "NowcastEntry",
+    "nowcast",
+    "Report",
+    "reporting_cdf",
     "RESAMPLERS",
     "CAUTION",
     "Interval",

@@ -9,6 +9,7 @@ non-negative, and each group's population is conserved exactly.
 
 from __future__ import annotations
 
+import hashlib
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -28,6 +29,7 @@ from ._observation import (
     poisson_loglik,
 )
 from ._particles import ParticleSet
+from ._reports import Report, reporting_cdf
 from ._priors import from_unconstrained, sample_prior, to_unconstrained
 
 __all__ = ["CompartmentalModel", "ModelError"]
@@ -53,6 +55,10 @@ class _CompiledSeries:
     dispersion: float
     dispersion_param: int | None
     weekly: bool
+    kernel: np.ndarray  # (K,) daily delay kernel (before the weekly sum)
+    event_dated: bool = False
+    # Reporting delay of an event-dated series: dist, (mean const, param), (sd const, param), max days.
+    rdelay: tuple | None = None
 
 
 def _expand(value: np.ndarray | float, shape: tuple[int, int]) -> np.ndarray:
@@ -154,8 +160,9 @@ class CompartmentalModel:
         A validated spec; see ``schemas/models`` for examples.
     """
 
-    def __init__(self, spec: ModelSpec) -> None:
+    def __init__(self, spec: ModelSpec, window_days: int | None = None) -> None:
         self.spec = spec
+        self._window_override = window_days
         self.compartments = list(spec.compartments)
         self.groups = spec.group_names
         self.n_groups = len(self.groups)
@@ -219,6 +226,15 @@ class CompartmentalModel:
         self._observed_flows = [flow_names.index(f) for f in dict.fromkeys(observed)]
         self._slot_of = {flow_names[f]: k for k, f in enumerate(self._observed_flows)}
         self.series: list[_CompiledSeries] = []
+        longest = max(
+            [s.delay.max_days for s in spec.series if s.delay is not None]
+            + [s.reporting_delay.max_days for s in spec.series if s.reporting_delay is not None]
+            + [0]
+        )
+        self.default_window_days = spec.window_days if spec.window_days is not None else longest
+        self.window_days = self.default_window_days if self._window_override is None else int(self._window_override)
+        if not 0 <= self.window_days <= 120:
+            raise ModelError(f"window_days must be between 0 and 120, got {self.window_days}")
         history_days = 0
         for s in spec.series:
             mask = np.zeros(self.n_groups)
@@ -231,7 +247,18 @@ class CompartmentalModel:
             )
             weights = np.convolve(kernel, np.ones(7)) if s.cadence == "weekly" else kernel
             if s.kind == "incidence":
-                history_days = max(history_days, weights.size)
+                history_days = max(history_days, weights.size + self.window_days)
+            rdelay = None
+            if s.reporting_delay is not None:
+                d = s.reporting_delay
+                mean_p = self._resolve(d.mean, f"series {s.name!r} reporting_delay.mean")
+                sd_p = self._resolve(d.sd, f"series {s.name!r} reporting_delay.sd")
+                rdelay = (
+                    d.dist,
+                    (float(d.mean) if mean_p is None else 0.0, mean_p),
+                    (float(d.sd) if sd_p is None else 0.0, sd_p),
+                    d.max_days,
+                )
             rep_param = self._resolve(s.reporting, f"series {s.name!r} reporting")
             disp_param = self._resolve(s.noise.dispersion, f"series {s.name!r} dispersion")
             self.series.append(
@@ -247,6 +274,9 @@ class CompartmentalModel:
                     dispersion=float(s.noise.dispersion) if disp_param is None and s.noise.dispersion is not None else 0.0,
                     dispersion_param=disp_param,
                     weekly=s.cadence == "weekly",
+                    kernel=kernel,
+                    event_dated=s.dated_by == "event",
+                    rdelay=rdelay,
                 )
             )
         self.history_days = history_days
@@ -333,7 +363,11 @@ class CompartmentalModel:
 
     # --------------------------------------------------------------- protocol
     def fingerprint(self) -> str:
-        return self.spec.fingerprint()
+        fp = self.spec.fingerprint()
+        if self.window_days == self.default_window_days:
+            return fp
+        # A window other than the spec's changes the particles' history length.
+        return hashlib.sha256(f"{fp}|window_days={self.window_days}".encode()).hexdigest()[:16]
 
     def initial(self, n: int, rng: np.random.Generator) -> ParticleSet:
         params = np.empty((n, len(self.param_names)))
@@ -750,6 +784,10 @@ class CompartmentalModel:
                     f"between 0 and {MAX_COUNT:.0e}"
                 )
 
+    def series_named(self, name: str) -> _CompiledSeries:
+        """The compiled series ``name`` (its kind, cadence, dating); KeyError if unknown."""
+        return self._series_by_name[name]
+
     def _column(self, params: np.ndarray, col: int | None, const: float) -> np.ndarray | float:
         return params[:, col] if col is not None else const
 
@@ -761,14 +799,14 @@ class CompartmentalModel:
             return rho * (particles.states[:, :, s.slot] @ s.group_mask)
         return rho * (self._daily(particles, s) @ s.weights)
 
-    def _daily(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
+    def _daily(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0, length: int | None = None) -> np.ndarray:
         """Daily counts of the series' flow over its groups, (n, L) float, newest first.
 
         Equal to ``history[:, :L, slot, :] @ group_mask`` (the mask is 0/1 and the
         counts are whole numbers, so the sum is exact in any order), without the
         per-row overhead of a stacked matrix product.
         """
-        block = particles.history[:, : s.weights.size, s.slot, :]
+        block = particles.history[:, lag : lag + (s.weights.size if length is None else length), s.slot, :]
         groups = self._mask_groups[s.name]
         if groups is None or block.dtype.kind not in "iu":
             return block @ s.group_mask
@@ -779,10 +817,10 @@ class CompartmentalModel:
             total = total + block[:, :, g]
         return np.array(total, dtype=float, order="C")
 
-    def _trials(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
+    def _trials(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0) -> np.ndarray:
         if s.kind == "prevalence":
             return particles.states[:, :, s.slot] @ s.group_mask.astype(np.int64)
-        return particles.history[:, : s.weights.size, s.slot, :] @ s.group_mask.astype(np.int64) @ np.ones(
+        return particles.history[:, lag : lag + s.weights.size, s.slot, :] @ s.group_mask.astype(np.int64) @ np.ones(
             s.weights.size, dtype=np.int64
         )
 
@@ -807,6 +845,95 @@ class CompartmentalModel:
                     size_terms[key] = _negbin_size_terms(k)
                 total += _negbin_loglik(y, mu, size_terms[key])
         return total
+
+    # ----------------------------------------------------- late and revised
+    def check_report(self, report: Report, now: int) -> None:
+        """Raise ObservationError if ``report`` cannot be assimilated by a cloud standing at day ``now``."""
+        self.check_observation(Observation(report.time, {report.series: report.value}))
+        s = self._series_by_name[report.series]
+        lag = now - report.time
+        if lag < 0:
+            raise ObservationError(f"series {s.name!r}: day {report.time} is ahead of the cloud's day {now}; move the cloud first")
+        if lag > self.window_days:
+            raise ObservationError(
+                f"series {s.name!r}: day {report.time} is {lag} days before the cloud's day {now}; "
+                f"the assimilation window keeps {self.window_days} days"
+            )
+        if s.kind == "prevalence" and lag > 0:
+            raise ObservationError(f"series {s.name!r} is a prevalence snapshot: only the cloud's current day can be assimilated")
+        if not s.event_dated and (report.previous or report.as_of is not None):
+            raise ObservationError(f"series {s.name!r} is dated by report: its counts are final on arrival and are not revised")
+        if report.increment < 0:
+            raise ObservationError(f"series {s.name!r}: total {report.value} is below the {report.previous} already assimilated")
+
+    def _event_means(self, particles: ParticleSet, s: _CompiledSeries, lag: int) -> np.ndarray:
+        """Eventual expected count of each event day of the period, (n, days), newest day first."""
+        rho = self._column(particles.params, s.reporting_param, s.reporting)
+        days = 7 if s.weekly else 1
+        k = s.kernel.size
+        out = np.empty((particles.size, days))
+        for i in range(days):
+            out[:, i] = self._daily(particles, s, lag + i, k) @ s.kernel
+        return out * np.reshape(rho, (-1, 1))
+
+    def _reported_share(self, particles: ParticleSet, s: _CompiledSeries, time: int, as_of: int | None) -> np.ndarray:
+        """F(as_of - j) for each event day j of the period ending on ``time``: (n or 1, days)."""
+        days = 7 if s.weekly else 1
+        if as_of is None:
+            return np.ones((1, days))
+        dist, (mean, mean_p), (sd, sd_p), max_days = s.rdelay  # type: ignore[misc]
+        cdf = reporting_cdf(
+            dist,
+            particles.params[:, mean_p] if mean_p is not None else mean,
+            particles.params[:, sd_p] if sd_p is not None else sd,
+            max_days,
+        )
+        elapsed = as_of - (time - np.arange(days))  # days since each event day
+        share = cdf[:, np.clip(elapsed, 0, max_days)]
+        share[:, elapsed < 0] = 0.0
+        return share
+
+    def report_mean(self, particles: ParticleSet, report: Report, now: int) -> np.ndarray:
+        """Expected value of the report's increment per particle (what it adds to what was known)."""
+        s = self._series_by_name[report.series]
+        lag = now - report.time
+        if s.kind == "prevalence":
+            return self.expected(particles, s.name)
+        if not s.event_dated:
+            rho = self._column(particles.params, s.reporting_param, s.reporting)
+            return rho * (self._daily(particles, s, lag) @ s.weights)
+        means = self._event_means(particles, s, lag)
+        share = self._reported_share(particles, s, report.time, report.as_of)
+        if report.previous_as_of is not None or report.previous:
+            share = share - self._reported_share(particles, s, report.time, report.previous_as_of)
+        return (means * share).sum(axis=1)
+
+    def report_log_likelihood(self, particles: ParticleSet, report: Report, now: int) -> np.ndarray:
+        """Per-particle log-likelihood of a report's increment, the cloud standing at day ``now``.
+
+        The value of a past period is judged against each particle's own
+        retained path (``history``), so nothing is re-simulated.
+        """
+        self.check_report(report, now)
+        s = self._series_by_name[report.series]
+        y = report.increment
+        if s.noise == "binomial":
+            rho = self._column(particles.params, s.reporting_param, s.reporting)
+            return binomial_loglik(y, self._trials(particles, s, now - report.time), rho)
+        mu = self.report_mean(particles, report, now)
+        if s.noise == "poisson":
+            return poisson_loglik(y, mu)
+        k = self._column(particles.params, s.dispersion_param, s.dispersion)
+        return _negbin_loglik(y, mu, _negbin_size_terms(k))
+
+    def sample_increment(self, particles: ParticleSet, report: Report, now: int, rng: np.random.Generator) -> np.ndarray:
+        """Draw the increment a report would carry, per particle (for nowcasts: the reports still to come)."""
+        s = self._series_by_name[report.series]
+        mu = self.report_mean(particles, report, now)
+        if s.noise == "negbin":
+            k = np.broadcast_to(self._column(particles.params, s.dispersion_param, s.dispersion), mu.shape)
+            return rng.poisson(rng.gamma(k, np.where(mu > 0, mu, 0.0) / k))
+        return rng.poisson(np.where(mu > 0, mu, 0.0))
 
     def sample_observation(self, particles: ParticleSet, rng: np.random.Generator) -> dict[str, np.ndarray]:
         """Draw one set of reported counts per particle from the observation model."""

@@ -11,6 +11,7 @@ import numpy as np
 from ._model import Model
 from ._observation import Observation, ObservationError
 from ._particles import ParticleSet
+from ._reports import Report
 from ._resampling import RESAMPLERS, resample
 from ._rng import generator_state, restore_generator
 from ._summary import DEFAULT_PROBS, Summary, summarise
@@ -98,6 +99,11 @@ class ParticleFilter:
         self.time = int(time)
         self.step_count = int(step_count)
         self.log_evidence = float(log_evidence)
+        # lineage[i, k]: index, in the cloud of day time - k, of particle i's ancestor on that day
+        # (k = 0..window); it counts the distinct paths a late value is judged against.
+        n = self.particles.size
+        self.window_days = int(getattr(model, "window_days", 0))
+        self.lineage = np.broadcast_to(np.arange(n, dtype=np.int32)[:, None], (n, self.window_days + 1)).copy()
 
     # ----------------------------------------------------------------- update
     def predict(self, to_time: int) -> None:
@@ -106,6 +112,9 @@ class ParticleFilter:
             raise ObservationError(f"cannot move the cloud back from day {self.time} to day {to_time}")
         if to_time > self.time:
             self.model.advance(self.particles, self.time, to_time, self.rng)
+            days = min(int(to_time) - self.time, self.lineage.shape[1])
+            self.lineage[:, days:] = self.lineage[:, :-days].copy()
+            self.lineage[:, :days] = np.arange(self.particles.size, dtype=np.int32)[:, None]
             self.time = int(to_time)
 
     def step(self, observation: Observation, with_summary: bool = True) -> StepResult:
@@ -116,10 +125,35 @@ class ParticleFilter:
                 f"observation for day {observation.time} is not after the cloud's day {self.time}"
             )
         self.predict(observation.time)
+        return self._weigh(self.model.log_likelihood(self.particles, observation), with_summary)
+
+    def assimilate(self, time: int, reports: list[Report], with_summary: bool = True) -> StepResult:
+        """Move the cloud to day ``time`` (never back) and weigh it by every report at once.
+
+        A report for a past day inside the model's window is judged against each
+        particle's own retained path; nothing is re-simulated. The model must
+        offer ``check_report`` and ``report_log_likelihood``.
+        """
+        time = max(int(time), self.time)
+        for report in reports:
+            if report.time > time:
+                raise ObservationError(f"report of {report.series!r} for day {report.time} is after day {time}")
+            self.model.check_report(report, time)  # type: ignore[attr-defined]
+        self.predict(time)
+        loglik = np.zeros(self.particles.size)
+        for report in reports:
+            loglik += self.model.report_log_likelihood(self.particles, report, self.time)  # type: ignore[attr-defined]
+        return self._weigh(loglik, with_summary)
+
+    def distinct_paths(self) -> int:
+        """How many distinct ancestors the cloud has at the oldest day of the window (path degeneracy)."""
+        return int(np.unique(self.lineage[:, -1]).size)
+
+    def _weigh(self, loglik: np.ndarray, with_summary: bool) -> StepResult:
         ps = self.particles
         n = ps.size
         prior_log_w = ps.log_weights - log_sum_exp(ps.log_weights)
-        loglik = np.asarray(self.model.log_likelihood(ps, observation), dtype=float)
+        loglik = np.asarray(loglik, dtype=float)
         loglik = np.where(np.isnan(loglik), -np.inf, loglik)
         posterior = prior_log_w + loglik
         total = log_sum_exp(posterior)
@@ -149,6 +183,7 @@ class ParticleFilter:
             centred = theta - mean
             cov = (centred * weights[:, None]).T @ centred
         self.particles = self.particles.take(index)
+        self.lineage = self.lineage[index]
         self.particles.log_weights = np.zeros(index.size)
         if delta is not None and static.size:
             a = (3 * delta - 1) / (2 * delta)
@@ -191,7 +226,9 @@ class ParticleFilter:
             "config": {k: list(v) if isinstance(v, tuple) else v for k, v in asdict(self.config).items()},
             "numpy": np.__version__,
         }
-        return header, {k: v.copy() for k, v in self.particles.arrays().items()}
+        arrays = {k: v.copy() for k, v in self.particles.arrays().items()}
+        arrays["lineage"] = self.lineage.copy()
+        return header, arrays
 
     @classmethod
     def from_state(
@@ -208,7 +245,7 @@ class ParticleFilter:
         cfg = dict(header["config"])
         cfg["summary_probs"] = tuple(cfg["summary_probs"])
         evidence = header["log_evidence"]
-        return cls(
+        pf = cls(
             model,
             FilterConfig(**cfg),
             restore_generator(header["rng"]),
@@ -217,3 +254,7 @@ class ParticleFilter:
             step_count=header["step"],
             log_evidence=float("-inf") if evidence is None else evidence,
         )
+        lineage = arrays.get("lineage")
+        if lineage is not None and lineage.shape == pf.lineage.shape:
+            pf.lineage = np.array(lineage, dtype=np.int32)
+        return pf

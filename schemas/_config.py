@@ -78,6 +78,13 @@ class StreamConfig(_Section):
     forecast_trajectories: int = Field(default=500, ge=10, le=100_000)
     forecast_horizon_days: int = Field(default=28, ge=1, le=90)
     publish_forecast: bool = Field(default=True, description="include the forecast block in every estimate")
+    assimilation_window_days: int | None = Field(
+        default=None,
+        ge=0,
+        le=120,
+        description="days back a late or revised value is still assimilated; default: the model spec's "
+        "window_days, else its longest delay. Changing it changes the model fingerprint",
+    )
     alerts: list[AlertRule] = Field(default_factory=list)
 
 

@@ -10,7 +10,7 @@ import datetime as dt
 import re
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StrictInt, field_validator
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, ValidationError, WithJsonSchema, field_validator, model_validator
 
 __all__ = [
     "StreamId",
@@ -21,6 +21,8 @@ __all__ = [
     "AlertMessage",
     "DeadLetter",
     "SourcePosition",
+    "NowcastPeriod",
+    "ForecastBlock",
     "parse_period",
     "MAX_COUNT",
     "MESSAGE_MODELS",
@@ -67,6 +69,11 @@ class ObservationMessage(_Message):
     counts: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] = Field(
         min_length=1, max_length=64
     )
+    as_of: Annotated[str, Field(pattern=r"^\d{4}-\d{2}-\d{2}$")] | None = Field(
+        default=None,
+        description="the date the counts are known as of (a data vintage); absent means final. "
+        "Event-dated series are revised upward as reports arrive; each later, higher total adds its increment",
+    )
     metadata: dict[Annotated[str, Field(max_length=64)], Annotated[str, Field(max_length=256)]] = Field(
         default_factory=dict, max_length=16
     )
@@ -75,6 +82,16 @@ class ObservationMessage(_Message):
     @classmethod
     def _real_period(cls, value: str) -> str:
         parse_period(value)
+        return value
+
+    @field_validator("as_of")
+    @classmethod
+    def _real_date(cls, value: str | None) -> str | None:
+        if value is not None:
+            try:
+                dt.date.fromisoformat(value)
+            except ValueError:
+                raise ValueError(f"as_of {value!r} is not a calendar date YYYY-MM-DD") from None
         return value
 
 
@@ -101,6 +118,131 @@ class Exceedance(_Message):
     )
 
 
+class NowcastPeriod(_Message):
+    """One recent period of an event-dated series: reported so far against the eventual count."""
+
+    period: Period
+    reported: int = Field(description="total reported so far")
+    as_of: str | None = Field(description="date the reported total is known as of (null: final)")
+    eventual: QuantitySummary = Field(description="posterior predictive of the eventual complete count")
+    share_pending: float = Field(description="expected share of the eventual count not yet reported")
+
+
+# ----------------------------------------------------------------------------- forecast block
+Number = float | None  # a rounded number; null where it is not finite
+
+
+class ForecastSummary(_Message):
+    """Per day ahead: the mean and one row of quantiles per level (each row ``horizon`` long)."""
+
+    mean: list[Number]
+    quantiles: list[list[Number]] = Field(description="one row per entry of the block's levels")
+
+
+class WeeklyForecast(_Message):
+    """Totals of the weekly blocks a weekly-cadence series reports (``ends``: model days)."""
+
+    ends: list[int]
+    mean: list[Number]
+    quantiles: list[list[Number]] = Field(description="one row per entry of the block's levels")
+
+
+class ScalarSummary(_Message):
+    mean: Number
+    quantiles: list[Number] = Field(description="one value per entry of the block's peak_levels")
+
+
+class PeakForecast(_Message):
+    """Timing (day ahead) and size of the peak over the horizon."""
+
+    day: ScalarSummary
+    size: ScalarSummary
+    p_at_horizon: Number = Field(description="share of trajectories still rising at the horizon (peak on its last day)")
+
+
+class SeriesForecast(_Message):
+    mean: list[Number]
+    quantiles: list[list[Number]] = Field(description="one row per entry of the block's levels")
+    weekly: WeeklyForecast | None = Field(default=None, description="weekly-cadence series only")
+    peak: PeakForecast
+
+
+class LatentForecast(_Message):
+    mean: list[Number]
+    quantiles: list[list[Number]] = Field(description="one row per entry of the block's levels")
+    peak: PeakForecast | None = Field(default=None, description="latent infections only")
+
+
+class ForecastBlock(_Message):
+    """The ``forecast`` block of an estimate: simulated futures of the current cloud, summarised
+    (``filters.Forecast.to_message_block``). Days ahead run 1..horizon."""
+
+    start: int = Field(description="model day of the forecast origin")
+    horizon: int = Field(ge=1)
+    n_trajectories: int = Field(ge=1)
+    levels: list[Annotated[float, Field(gt=0, lt=1)]] = Field(min_length=1)
+    peak_levels: list[Annotated[float, Field(gt=0, lt=1)]] = Field(min_length=1)
+    series: dict[str, SeriesForecast] = Field(description="per reported series, with observation noise")
+    latent: dict[str, LatentForecast] = Field(description="infections, susceptibles, R_eff")
+    growth_probability: Number = Field(
+        default=None, description="P(latent infections over days 8-14 ahead exceed those over days 1-7); horizons of 14+ days"
+    )
+
+    @model_validator(mode="after")
+    def _shapes(self) -> "ForecastBlock":
+        where = []
+        tables = [(f"series.{k}", v) for k, v in self.series.items()]
+        tables += [(f"series.{k}.weekly", v.weekly) for k, v in self.series.items() if v.weekly is not None]
+        tables += [(f"latent.{k}", v) for k, v in self.latent.items()]
+        for name, t in tables:
+            length = len(t.ends) if isinstance(t, WeeklyForecast) else self.horizon
+            if len(t.mean) != length or len(t.quantiles) != len(self.levels) or any(len(r) != length for r in t.quantiles):
+                where.append(f"{name}: mean and every quantile row must have {length} values and there must be "
+                             f"{len(self.levels)} rows (one per level)")
+        peaks = [(f"series.{k}.peak", v.peak) for k, v in self.series.items()]
+        peaks += [(f"latent.{k}.peak", v.peak) for k, v in self.latent.items() if v.peak is not None]
+        for name, pk in peaks:
+            if len(pk.day.quantiles) != len(self.peak_levels) or len(pk.size.quantiles) != len(self.peak_levels):
+                where.append(f"{name}: {len(self.peak_levels)} quantiles (one per peak level) expected")
+        if where:
+            raise ValueError("forecast block shapes do not match: " + "; ".join(where))
+        return self
+
+
+def _forecast_block(value: dict[str, Any] | None) -> dict[str, Any] | None:
+    """Validate a forecast block against :class:`ForecastBlock`; keep the dict as given, so the
+    published bytes are exactly what the forecast produced."""
+    if value is not None:
+        try:
+            ForecastBlock.model_validate(value)
+        except ValidationError as exc:
+            raise ValueError(f"invalid forecast block: {exc}") from None
+    return value
+
+
+def _inlined(schema: dict[str, Any]) -> dict[str, Any]:
+    """A model's JSON Schema with its ``$defs`` substituted in place (the models are not recursive)."""
+    defs = schema.pop("$defs", {})
+
+    def walk(node: Any) -> Any:
+        if isinstance(node, dict):
+            if "$ref" in node:
+                return walk(dict(defs[node["$ref"].rsplit("/", 1)[-1]]))
+            return {k: walk(v) for k, v in node.items()}
+        if isinstance(node, list):
+            return [walk(v) for v in node]
+        return node
+
+    return walk(schema)
+
+
+ForecastBlockDict = Annotated[
+    dict[str, Any],
+    AfterValidator(_forecast_block),
+    WithJsonSchema(_inlined(ForecastBlock.model_json_schema(mode="validation"))),
+]
+
+
 class EstimateMessage(_Message):
     """What a stream's cloud believes after assimilating one period."""
 
@@ -116,15 +258,26 @@ class EstimateMessage(_Message):
     resampled: bool
     collapsed: bool
     log_evidence_increment: float | None
+    cloud_day: int | None = Field(
+        default=None, description="model day the cloud stands at (the latest period any series has reached)"
+    )
+    distinct_paths: int | None = Field(
+        default=None,
+        description="distinct particle ancestors at the oldest day of the assimilation window (path degeneracy)",
+    )
     quantities: dict[str, QuantitySummary]
     exceedance: dict[str, Exceedance] = Field(default_factory=dict, description="per alert rule name")
     growth_probability: float | None = Field(
         default=None,
         description="P(latent new infections over days 8-14 ahead exceed those over days 1-7 ahead)",
     )
-    forecast: dict[str, Any] | None = Field(
+    forecast: ForecastBlockDict | None = Field(
         default=None,
         description="per series and latent quantity: mean and quantiles per day ahead, weekly totals, peak timing and size",
+    )
+    nowcast: dict[str, list[NowcastPeriod]] | None = Field(
+        default=None,
+        description="per event-dated series: recent periods with what is reported so far and the eventual count expected",
     )
     source: SourcePosition
     caution: str = (
@@ -165,6 +318,12 @@ class DeadLetter(_Message):
         "late",
         "future",
         "bad_period",
+        "bad_as_of",
+        "cadence",
+        "duplicate_series",
+        "lower_total",
+        "not_revisable",
+        "conflicting_vintage",
     ]
     message: str
     stream: str | None = None

@@ -184,6 +184,27 @@ class Delay(_Strict):
     max_days: int = Field(ge=1, le=60)
 
 
+class ReportingDelay(_Strict):
+    """Days from an event (onset, specimen) to its report, for event-dated series.
+
+    ``mean`` and ``sd`` are numbers or parameter names, so the filter can learn
+    the delay from the revisions as they arrive.
+    """
+
+    dist: Literal["gamma", "lognormal"]
+    mean: float | Identifier
+    sd: float | Identifier
+    max_days: int = Field(ge=1, le=120)
+
+    @model_validator(mode="after")
+    def _positive(self) -> "ReportingDelay":
+        for key in ("mean", "sd"):
+            value = getattr(self, key)
+            if isinstance(value, float) and not 0 < value <= 120:
+                raise ValueError(f"reporting_delay {key} must be in (0, 120] days, got {value}")
+        return self
+
+
 class Noise(_Strict):
     dist: Literal["poisson", "negbin", "binomial"]
     dispersion: float | Identifier | None = None
@@ -209,6 +230,12 @@ class Series(_Strict):
     delay: Delay | None = None
     noise: Noise
     cadence: Literal["daily", "weekly"] = "daily"
+    dated_by: Literal["report", "event"] = Field(
+        default="report",
+        description="'report': a period's count is what was reported in it (final on arrival); "
+        "'event': counted by event date (onset, specimen) and completed over time by reporting_delay",
+    )
+    reporting_delay: ReportingDelay | None = None
 
     @model_validator(mode="after")
     def _target(self) -> "Series":
@@ -223,6 +250,13 @@ class Series(_Strict):
                 "binomial noise needs whole-number trials, but a delay kernel makes expected "
                 "counts fractional; use poisson or negbin noise with a delay"
             )
+        if self.dated_by == "event":
+            if self.kind != "incidence" or self.reporting_delay is None:
+                raise ValueError("an event-dated series is an incidence series with a 'reporting_delay'")
+            if self.noise.dist == "binomial":
+                raise ValueError("an event-dated series is revised by increments: use poisson or negbin noise")
+        elif self.reporting_delay is not None:
+            raise ValueError("'reporting_delay' belongs to event-dated series (dated_by = \"event\")")
         if isinstance(self.reporting, float) and not 0 < self.reporting <= 1:
             raise ValueError(f"reporting fraction must be in (0, 1], got {self.reporting}")
         return self
@@ -242,6 +276,13 @@ class ModelSpec(_Strict):
     derived: dict[Identifier, str] = Field(default_factory=dict)
     initial: Initial
     series: list[Series] = Field(min_length=1, max_length=64)
+    window_days: int | None = Field(
+        default=None,
+        ge=0,
+        le=120,
+        description="how many days back a late or revised value is still assimilated; "
+        "default: the longest delay of any series",
+    )
 
     @model_validator(mode="after")
     def _cross_references(self) -> "ModelSpec":
@@ -324,9 +365,13 @@ class ModelSpec(_Strict):
             for gname in s.groups or []:
                 if gname not in groups:
                     problem(("series", i, "groups"), f"series {s.name!r}: group {gname!r} unknown; allowed: {groups}", gname)
-            for ref, what in ((s.reporting, "reporting"), (s.noise.dispersion, "dispersion")):
+            refs = [(s.reporting, "reporting"), (s.noise.dispersion, "dispersion")]
+            if s.reporting_delay is not None:
+                refs += [(s.reporting_delay.mean, "reporting_delay.mean"), (s.reporting_delay.sd, "reporting_delay.sd")]
+            for ref, what in refs:
                 if isinstance(ref, str) and ref not in self.parameters and ref not in self.derived:
-                    loc = ("series", i, "reporting") if what == "reporting" else ("series", i, "noise", "dispersion")
+                    loc = {"reporting": ("series", i, "reporting"), "dispersion": ("series", i, "noise", "dispersion")}.get(
+                        what, ("series", i, *what.split(".")))
                     problem(loc, f"series {s.name!r}: {what} = {ref!r} is not a parameter; allowed: {sorted(self.parameters)}", ref)
         if problems:
             raise ValidationError.from_exception_data(type(self).__name__, problems)
@@ -338,8 +383,15 @@ class ModelSpec(_Strict):
 
     def fingerprint(self) -> str:
         """Stable hash of everything that changes what a particle means."""
-        canonical = orjson.dumps(
-            self.model_dump(mode="json", by_alias=True, exclude={"description"}), option=orjson.OPT_SORT_KEYS)
+        data = self.model_dump(mode="json", by_alias=True, exclude={"description"})
+        # Keys added later are left out at their defaults, so older specs keep their fingerprints.
+        if data.get("window_days") is None:
+            data.pop("window_days", None)
+        for series in data["series"]:
+            if series.get("dated_by") == "report" and series.get("reporting_delay") is None:
+                series.pop("dated_by", None)
+                series.pop("reporting_delay", None)
+        canonical = orjson.dumps(data, option=orjson.OPT_SORT_KEYS)
         return hashlib.sha256(canonical).hexdigest()[:16]
 
 
@@ -348,11 +400,11 @@ def load_model_spec(path: str | Path) -> ModelSpec:
     return load_toml_model(ModelSpec, path)
 
 
-EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band")
+EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band", "seir_two_band_lab")
 
 
 def example_model_path(name: str) -> Path:
-    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``)."""
+    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``, ``seir_two_band_lab``)."""
     if name not in EXAMPLE_MODELS:
         raise ValueError(f"no example model {name!r}; allowed: {list(EXAMPLE_MODELS)}")
     return Path(__file__).with_name("models") / f"{name}.toml"

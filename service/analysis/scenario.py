@@ -162,7 +162,7 @@ def run_scenario_command(args: argparse.Namespace) -> int:
     if stream is None:
         return _fail(f"stream {args.stream!r} is not in {args.config}; allowed: {sorted(streams)}", 2)
     try:
-        model = CompartmentalModel(load_stream_model(stream))
+        model = CompartmentalModel(load_stream_model(stream), window_days=stream.assimilation_window_days)
     except (SpecError, ValueError) as exc:
         return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
     try:

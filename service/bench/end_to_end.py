@@ -106,7 +106,7 @@ def _load_broker_module():
 
 
 def _engine_seconds(config: DeploymentConfig, messages: list[bytes], root: Path) -> list[float]:
-    from schemas import ObservationMessage, parse_period
+    from schemas import ObservationMessage
 
     from ..runtime.metrics import Metrics
     from ..runtime.processor import RecordProcessor
@@ -121,11 +121,11 @@ def _engine_seconds(config: DeploymentConfig, messages: list[bytes], root: Path)
     out = []
     for raw in messages:
         message = ObservationMessage.model_validate(orjson.loads(raw))
-        day = runtime.day_of(parse_period(message.period))
+        plan = processor._plan(runtime, message)
         t0 = time.perf_counter()
-        processor._step(runtime, message, day)
+        processor._step(runtime, message, plan)
         out.append(time.perf_counter() - t0)
-        runtime.last_day = day
+        runtime.last_day = plan.time
     return out
 
 

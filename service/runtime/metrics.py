@@ -62,6 +62,11 @@ class Metrics:
         self.log_evidence = Gauge("casecloud_log_evidence_increment", "Log-evidence increment of the latest update", ["stream"], registry=r)
         self.resamples = Counter("casecloud_resamples", "Resampling events", ["stream"], registry=r)
         self.collapses = Counter("casecloud_collapses", "Updates where no particle explained the data", ["stream"], registry=r)
+        self.distinct_paths = Gauge(
+            "casecloud_distinct_paths", "Distinct particle ancestors at the oldest day of the assimilation window", ["stream"], registry=r
+        )
+        self.late_values = Counter("casecloud_late_values", "Series values assimilated for a past period (inside the window)", ["stream"], registry=r)
+        self.revisions = Counter("casecloud_revisions", "Revised totals whose increment was assimilated", ["stream"], registry=r)
         self.alerts = Counter("casecloud_alert_events", "Alert messages published", ["stream", "rule", "status"], registry=r)
         self.last_update: dict[str, float] = {}
         self.clock = clock

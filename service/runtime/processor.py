@@ -9,6 +9,7 @@ from __future__ import annotations
 import asyncio
 import base64
 import datetime as dt
+import json
 import logging
 import time
 import uuid
@@ -20,14 +21,16 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
-from filters import Observation, ObservationError, forecast
+from filters import Observation, ObservationError, Report, forecast, nowcast
 from schemas import (
     AlertMessage,
     DeadLetter,
     DeploymentConfig,
     EstimateMessage,
     Exceedance,
+    NowcastPeriod,
     ObservationMessage,
+    QuantitySummary,
     SourcePosition,
     parse_period,
 )
@@ -60,6 +63,34 @@ class _Reject(Exception):
     def __init__(self, reason: str, message: str, stream: str | None = None) -> None:
         super().__init__(message)
         self.reason, self.message, self.stream = reason, message, stream
+
+
+@dataclass
+class _Plan:
+    """What one message does to its stream: move the cloud to ``time`` and weigh it by ``reports``."""
+
+    day: int  # model day of the message's period
+    time: int  # the cloud's day afterwards
+    reports: list[Report]
+    updates: dict[str, tuple[float, int | None]]  # series -> (total, as-of day) to remember for ``day``
+    skipped: list[str]  # one reason per skipped series value
+
+
+def _repeated_key(value: bytes) -> str | None:
+    """The first key given twice in one JSON object (a parser keeps only one of them), or None."""
+    repeated: list[str] = []
+
+    def pairs(items: list[tuple[str, Any]]) -> dict[str, Any]:
+        keys = [k for k, _ in items]
+        repeated.extend(k for i, k in enumerate(keys) if k in keys[:i])
+        return dict(items)
+
+    json.loads(value, object_pairs_hook=pairs)
+    return repeated[0] if repeated else None
+
+
+def _vintage(as_of: int | None) -> float:
+    return float("inf") if as_of is None else float(as_of)
 
 
 def _event_id(kind: str, stream: str, period: str, step: int, extra: str = "") -> str:
@@ -128,14 +159,19 @@ class RecordProcessor:
         if key in runtime.positions and record.offset <= runtime.positions[key]:
             self.metrics.skipped.labels(runtime.id, "already_applied").inc()
             return Outcome("skipped", "already_applied", runtime.id)
-        day = runtime.day_of(parse_period(message.period))
-        if runtime.last_day is not None and day == runtime.last_day:
-            self.metrics.skipped.labels(runtime.id, "duplicate_period").inc()
-            return Outcome("skipped", "duplicate_period", runtime.id)
-        if runtime.last_day is not None and day < runtime.last_day:
-            rej = _Reject("late", f"period {message.period} is older than the stream's latest period {runtime.last_period}; late data is not applied to a cloud that has moved on", runtime.id)
+        try:
+            plan = self._plan(runtime, message)
+        except _Reject as rej:
             return await self._dead_letter(record, rej, publish)
-        outputs = await self._apply(runtime, message, day, record)
+        if plan.skipped and not plan.reports:
+            # Nothing new: every value was known already (or is an older vintage).
+            reason = "duplicate_period" if all(r == "duplicate_period" for r in plan.skipped) else plan.skipped[0]
+            for r in plan.skipped:
+                self.metrics.skipped.labels(runtime.id, r).inc()
+            return Outcome("skipped", reason, runtime.id)
+        for r in plan.skipped:
+            self.metrics.skipped.labels(runtime.id, r).inc()
+        outputs = await self._apply(runtime, message, plan, record)
         started = time.perf_counter()
         await publish(outputs)
         self.metrics.publish_seconds.observe(time.perf_counter() - started)
@@ -195,7 +231,84 @@ class RecordProcessor:
             runtime.model.check_observation(Observation(0, dict(message.counts)))
         except ObservationError as exc:
             raise _Reject("bad_count", str(exc), message.stream) from None
+        weekly_period = "W" in message.period
+        for name in message.counts:
+            series = runtime.model.series_named(name)
+            if series.weekly != weekly_period:
+                want = "an ISO week YYYY-Www" if series.weekly else "a day YYYY-MM-DD"
+                raise _Reject(
+                    "cadence",
+                    f"series {name!r} is {'weekly' if series.weekly else 'daily'}: its period must be {want}; given {message.period!r}",
+                    message.stream,
+                )
+        repeated = _repeated_key(record.value)
+        if repeated is not None:
+            raise _Reject("duplicate_series", f"key {repeated!r} is given twice in one JSON object; send each series once per message", message.stream)
+        if message.as_of is not None:
+            as_of = dt.date.fromisoformat(message.as_of)
+            first_day = date - dt.timedelta(days=6) if weekly_period else date
+            if as_of < first_day:
+                raise _Reject("bad_as_of", f"as_of {message.as_of} is before period {message.period} begins ({first_day}); nothing can be known of it yet", message.stream)
+            if as_of > horizon:
+                raise _Reject("bad_as_of", f"as_of {message.as_of} is after {horizon} (today plus {self.config.service.max_future_days} days)", message.stream)
         return message, runtime
+
+    def _plan(self, runtime: StreamRuntime, message: ObservationMessage) -> _Plan:
+        """Sort each series value of a message: new, late, a revision, a duplicate or an older vintage.
+
+        Raises _Reject for values that must not be applied (the whole message then
+        becomes one dead letter, so no part of it is applied twice on a re-send).
+        """
+        model, sid = runtime.model, runtime.id
+        day = runtime.day_of(parse_period(message.period))
+        as_of = runtime.day_of(dt.date.fromisoformat(message.as_of)) if message.as_of is not None else None
+        now = runtime.last_day
+        time = day if now is None else max(now, day)
+        plan = _Plan(day=day, time=time, reports=[], updates={}, skipped=[])
+        if now is not None and day <= now and all(v is None for v in message.counts.values()):
+            # Nothing reported: an empty message can only move the cloud forward.
+            if day == now:
+                plan.skipped.append("duplicate_period")
+                return plan
+            raise _Reject("late", f"period {message.period} is older than the stream's latest period {runtime.last_period} and carries no value", sid)
+        for name, value in message.counts.items():
+            if value is None:
+                continue
+            series = model.series_named(name)
+            if now is not None and now - day > model.window_days:
+                raise _Reject(
+                    "late",
+                    f"period {message.period} is {now - day} days older than the stream's latest period {runtime.last_period}; "
+                    f"values up to {model.window_days} days old are assimilated (assimilation window)",
+                    sid,
+                )
+            if now is not None and day < now and series.kind == "prevalence":
+                raise _Reject("late", f"series {name!r} is a prevalence snapshot: only the latest period ({runtime.last_period}) can be assimilated", sid)
+            known = runtime.known.get(name, {}).get(day)
+            if known is None:
+                plan.reports.append(Report(name, day, float(value), as_of if series.event_dated else None))
+                plan.updates[name] = (float(value), as_of)
+                continue
+            total, known_as_of = known
+            if float(value) == total:
+                plan.skipped.append("duplicate_period")
+            elif not series.event_dated:
+                raise _Reject(
+                    "not_revisable",
+                    f"series {name!r} is dated by report: {total:g} was assimilated for {message.period}, now {value}; "
+                    "a series whose counts rise as reports arrive must be declared dated_by = \"event\" with a reporting_delay",
+                    sid,
+                )
+            elif _vintage(as_of) < _vintage(known_as_of):
+                plan.skipped.append("stale_vintage")
+            elif _vintage(as_of) == _vintage(known_as_of):
+                raise _Reject("conflicting_vintage", f"series {name!r} {message.period}: {value} as of {message.as_of or 'final'}, but {total:g} is already known as of the same date", sid)
+            elif value < total:
+                raise _Reject("lower_total", f"series {name!r} {message.period}: total {value} as of {message.as_of or 'final'} is below the {total:g} already assimilated; totals are never lowered", sid)
+            else:
+                plan.reports.append(Report(name, day, float(value), as_of, total, known_as_of))
+                plan.updates[name] = (float(value), as_of)
+        return plan
 
     async def _dead_letter(self, record: Record, rej: _Reject, publish) -> Outcome:
         letter = DeadLetter(
@@ -218,11 +331,14 @@ class RecordProcessor:
         return Outcome("dead_letter", rej.reason, rej.stream, [out])
 
     # ------------------------------------------------------------------ apply
-    async def _apply(self, runtime: StreamRuntime, message: ObservationMessage, day: int, record: Record) -> list[OutRecord]:
+    async def _apply(self, runtime: StreamRuntime, message: ObservationMessage, plan: _Plan, record: Record) -> list[OutRecord]:
         started = time.perf_counter()
-        result, exceedance, latest, block, growth = await asyncio.to_thread(self._step, runtime, message, day)
+        result, exceedance, latest, block, growth, nowcasts = await asyncio.to_thread(self._step, runtime, message, plan)
         self.metrics.step_seconds.labels(runtime.id).observe(time.perf_counter() - started)
-        runtime.last_day, runtime.last_period = day, message.period
+        day = plan.day
+        if runtime.last_day is None or day >= runtime.last_day:
+            runtime.last_period = message.period
+        runtime.last_day = plan.time
         runtime.positions[f"{record.topic}|{record.partition}"] = record.offset
         m, sid = self.metrics, runtime.id
         m.processed.labels(sid).inc()
@@ -235,6 +351,14 @@ class RecordProcessor:
         if result.collapsed:
             m.collapses.labels(sid).inc()
         m.mark_updated(sid)
+        paths = runtime.filter.distinct_paths()
+        m.distinct_paths.labels(sid).set(paths)
+        late = sum(1 for r in plan.reports if r.time < plan.time)
+        if late:
+            m.late_values.labels(sid).inc(late)
+        revisions = sum(1 for r in plan.reports if r.previous_as_of is not None or r.previous)
+        if revisions:
+            m.revisions.labels(sid).inc(revisions)
         summary = result.summary
         assert summary is not None
         estimate = EstimateMessage(
@@ -250,10 +374,13 @@ class RecordProcessor:
             resampled=result.resampled,
             collapsed=result.collapsed,
             log_evidence_increment=result.log_evidence_increment,
+            cloud_day=plan.time,
+            distinct_paths=paths,
             quantities=summary.as_dict(),
             exceedance=exceedance,
             growth_probability=growth,
             forecast=block,
+            nowcast=nowcasts,
             source=SourcePosition(topic=record.topic, partition=record.partition, offset=record.offset),
         )
         key = sid.encode()
@@ -286,11 +413,19 @@ class RecordProcessor:
             m.alerts.labels(sid, rule.name, decision.status).inc()
         return outputs
 
-    def _step(self, runtime: StreamRuntime, message: ObservationMessage, day: int):
-        """CPU work (runs in a worker thread): step, summarise, forecast."""
+    def _step(self, runtime: StreamRuntime, message: ObservationMessage, plan: _Plan):
+        """CPU work (runs in a worker thread): assimilate, summarise, nowcast, forecast."""
         pf, cfg = runtime.filter, runtime.config
-        result = pf.step(Observation(day, dict(message.counts)))
+        result = pf.assimilate(plan.time, plan.reports)
+        if not result.collapsed:
+            for name, entry in plan.updates.items():
+                runtime.known.setdefault(name, {})[plan.day] = entry
+        oldest = pf.time - runtime.model.window_days
+        for days in runtime.known.values():
+            for d in [d for d in days if d < oldest]:
+                del days[d]
         weights = pf.weights()
+        nowcasts = self._nowcasts(runtime, weights)
         latest = {s.name: float(weights @ runtime.model.expected(pf.particles, s.name)) for s in runtime.model.series}
         exceedance: dict[str, Exceedance] = {}
         block = growth = None
@@ -309,4 +444,26 @@ class RecordProcessor:
             if cfg.publish_forecast:
                 block = fc.to_message_block()
                 growth = block.get("growth_probability")
-        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}, block, growth
+        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}, block, growth, nowcasts
+
+    def _nowcasts(self, runtime: StreamRuntime, weights: np.ndarray) -> dict[str, list[NowcastPeriod]] | None:
+        """Reported-so-far against the eventual counts, for every event-dated series (None if it has none)."""
+        model, pf = runtime.model, runtime.filter
+        if not any(s.event_dated for s in model.series):
+            return None
+        probs = pf.config.summary_probs
+        out: dict[str, list[NowcastPeriod]] = {s.name: [] for s in model.series if s.event_dated}
+        for e in nowcast(model, pf.particles, weights, runtime.known, pf.time, pf.rng, probs):
+            end = runtime.config.start + dt.timedelta(days=e.time)
+            weekly = model.series_named(e.series).weekly
+            year, week, _ = end.isocalendar()
+            out[e.series].append(
+                NowcastPeriod(
+                    period=f"{year}-W{week:02d}" if weekly else end.isoformat(),
+                    reported=int(e.reported),
+                    as_of=None if e.as_of is None else (runtime.config.start + dt.timedelta(days=e.as_of)).isoformat(),
+                    eventual=QuantitySummary(mean=e.mean, quantiles={f"{p:g}": v for p, v in e.quantiles.items()}),
+                    share_pending=e.share_pending,
+                )
+            )
+        return out

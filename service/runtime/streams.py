@@ -45,6 +45,8 @@ class StreamRuntime:
     last_day: int | None = None
     last_period: str | None = None
     positions: dict[str, int] = field(default_factory=dict)  # "topic|partition" -> last applied offset
+    # series -> event day -> (total assimilated, model day it was known as of, None: final), inside the window
+    known: dict[str, dict[int, tuple[float, int | None]]] = field(default_factory=dict)
     alerts: dict[str, AlertState] = field(default_factory=dict)
     saved_at: float | None = None  # when the checkpoint it was restored from was written (file time)
 
@@ -67,6 +69,10 @@ class StreamRuntime:
                 "last_period": self.last_period,
                 "positions": dict(self.positions),
                 "alerts": {k: v.to_json() for k, v in self.alerts.items()},
+                "known": {
+                    series: {str(day): [total, as_of] for day, (total, as_of) in sorted(days.items())}
+                    for series, days in sorted(self.known.items())
+                },
             },
             arrays=arrays,
         )
@@ -90,7 +96,7 @@ class StreamRegistry:
         self.models: dict[str, CompartmentalModel] = {}
         for s in config.streams:
             try:
-                self.models[s.id] = CompartmentalModel(load_stream_model(s))
+                self.models[s.id] = CompartmentalModel(load_stream_model(s), window_days=s.assimilation_window_days)
             except (SpecError, ValueError) as exc:
                 raise ConfigError(f"stream {s.id!r}: model {s.model!r} is unusable: {exc}", stream=s.id) from exc
             names = {series.name for series in self.models[s.id].series}
@@ -143,6 +149,10 @@ class StreamRegistry:
             last_period=cp.header.get("last_period"),
             positions={k: int(v) for k, v in cp.header.get("positions", {}).items()},
             alerts={k: AlertState.from_json(v) for k, v in cp.header.get("alerts", {}).items()},
+            known={
+                series: {int(day): (float(total), None if as_of is None else int(as_of)) for day, (total, as_of) in days.items()}
+                for series, days in cp.header.get("known", {}).items()
+            },
             saved_at=_file_time(loaded.path),
         )
 

@@ -84,8 +84,9 @@ def test_figures_are_positive_and_finite(report):
     assert report["floor_ratio"] == pytest.approx(report["update_seconds"] / report["floor_seconds"])
     assert report["naive_speedup"] == pytest.approx(report["naive_seconds"] / report["update_seconds"])
     # Particle state of this spec: 2x4 int64 counts + 6 float64 parameters
-    # + 7x1x2 int64 incidence history + one float64 log-weight per particle.
-    assert report["state_bytes_per_particle"] == 8 * (8 + 6 + 14 + 1)
+    # + (7 kernel days + 6 window days) x 1 flow x 2 groups int64 incidence history + one float64
+    # log-weight per particle (the assimilation window defaults to the longest delay, 6 days).
+    assert report["state_bytes_per_particle"] == 8 * (8 + 6 + 13 * 2 + 1)
 
 
 def test_targets_are_pass_fail_booleans(report):

@@ -64,7 +64,14 @@ REASONS = {
     "late",
     "future",
     "bad_period",
+    "bad_as_of",
+    "cadence",
+    "duplicate_series",
+    "lower_total",
+    "not_revisable",
+    "conflicting_vintage",
 }
+BASE_CASES = 10  # the count the base cloud assimilated for LAST_DAY (conftest's obs default)
 SCHEMA_LEVEL = {"schema", "bad_count", "bad_period", "unknown_series"}
 
 # ------------------------------------------------------------------ the oracle
@@ -101,9 +108,10 @@ def oracle(value: bytes) -> tuple[str, set[str]]:
     if not isinstance(raw, dict):
         return dead, {"schema"}
     keys = set(raw)
-    if not {"stream", "period", "counts"} <= keys or keys - {"stream", "period", "counts", "metadata"}:
+    if not {"stream", "period", "counts"} <= keys or keys - {"stream", "period", "counts", "metadata", "as_of"}:
         return dead, SCHEMA_LEVEL
     stream, period, counts, metadata = raw["stream"], raw["period"], raw["counts"], raw.get("metadata", {})
+    as_of = raw.get("as_of")
     shape_ok = (
         isinstance(stream, str)
         and _STREAM_RE.fullmatch(stream) is not None
@@ -115,6 +123,7 @@ def oracle(value: bytes) -> tuple[str, set[str]]:
         and isinstance(metadata, dict)
         and len(metadata) <= 16
         and all(len(k) <= 64 and isinstance(v, str) and len(v) <= 256 for k, v in metadata.items())
+        and (as_of is None or (isinstance(as_of, str) and _DAY_RE.fullmatch(as_of) is not None and _last_day_of(as_of) is not None))
     )
     if not shape_ok:
         return dead, SCHEMA_LEVEL
@@ -131,11 +140,32 @@ def oracle(value: bytes) -> tuple[str, set[str]]:
     day = (date - START).days
     if day - LAST_DAY > MAX_GAP:
         return dead, {"bad_period"}
+    if _WEEK_RE.fullmatch(period):
+        return dead, {"cadence"}  # "cases" is a daily series
+    if _repeated_key(value):
+        return dead, {"duplicate_series"}
+    if as_of is not None and not date <= _last_day_of(as_of) <= TODAY + dt.timedelta(days=MAX_FUTURE):
+        return dead, {"bad_as_of"}
     if day == LAST_DAY:
-        return "skipped", set()
+        # the same day again: equal (or no) count is a duplicate; another count would revise
+        # a series dated by report, which is refused
+        return ("skipped", set()) if counts["cases"] in (None, BASE_CASES) else (dead, {"not_revisable"})
     if day < LAST_DAY:
-        return dead, {"late"}
+        return dead, {"late"}  # the sir example has no delay, so its assimilation window is 0 days
     return "applied", set()
+
+
+def _repeated_key(value: bytes) -> bool:
+    """Whether any JSON object in ``value`` names a key twice (the standard library sees every pair)."""
+    found = []
+
+    def pairs(items):
+        keys = [k for k, _ in items]
+        found.append(len(keys) != len(set(keys)))
+        return dict(items)
+
+    json.loads(value, object_pairs_hook=pairs)
+    return any(found)
 
 
 # ------------------------------------------------------------------ strategies
@@ -288,6 +318,7 @@ def test_fuzzed_records_are_applied_only_when_valid_and_never_touch_a_cloud_othe
             model,
             ParticleFilter.from_state(model, header, {k: v.copy() for k, v in arrays.items()}),
             last_day=LAST_DAY,
+            known={"cases": {LAST_DAY: (float(BASE_CASES), None)}},
             last_period=kit.period(LAST_DAY),
             positions={"input|0": 0},
         )

@@ -61,7 +61,7 @@ def _feed(kit, days=range(2, 10)):
 
 
 def test_duplicate_period_is_skipped_and_counted(harness, kit):
-    h = harness([kit.obs(4, 5), kit.obs(5, 8), kit.obs(5, 30), kit.obs(6, 9)])
+    h = harness([kit.obs(4, 5), kit.obs(5, 8), kit.obs(5, 8), kit.obs(6, 9)])
     assert h.run() == {"applied": 3, "skipped": 1, "dead_letter": 0}
     dup = h.trace[2]
     assert (dup["outcome"].status, dup["outcome"].reason) == ("skipped", "duplicate_period")
@@ -90,11 +90,20 @@ def test_gap_of_several_days_propagates(harness, kit):
     assert s_mean[2] < s_mean[1]
 
 
+def test_changed_count_of_a_report_dated_series_is_a_dead_letter(harness, kit):
+    # A different total for a period already assimilated (the sir example's "cases" is dated by
+    # report, so final on arrival) is neither skipped silently nor applied twice.
+    h = harness([kit.obs(4, 5), kit.obs(5, 8), kit.obs(5, 30), kit.obs(6, 9)])
+    assert h.run() == {"applied": 3, "skipped": 0, "dead_letter": 1}
+    assert (h.trace[2]["outcome"].status, h.trace[2]["outcome"].reason) == ("dead_letter", "not_revisable")
+    assert h.trace[2]["cloud"] == h.trace[1]["cloud"]
+
+
 def test_weekly_period_lands_on_its_sunday(harness, kit):
-    # 2026-W03 ends on Sunday 2026-01-18, model day 17
+    # 2026-W03 ends on Sunday 2026-01-18, model day 17; a weekly period for the daily series is refused
     h = harness([kit.obs(4), kit.obs("2026-W03")])
-    assert h.run() == {"applied": 2, "skipped": 0, "dead_letter": 0}
-    assert orjson.loads(h.transport.published["estimates"][-1].value)["day"] == 17
+    assert h.run() == {"applied": 1, "skipped": 0, "dead_letter": 1}
+    assert h.trace[1]["outcome"].reason == "cadence"
 
 
 def test_offset_already_applied_is_skipped(tmp_path, kit):
