@@ -64,10 +64,10 @@ def demo_config_toml(particles: int) -> str:
     """
     return f"""\
 # casecloud deployment config, written by `casecloud demo` for the fictional Brackenford district.
-# The demo ran with exactly this file. Edit it and pass it to any command that takes --config:
-#   casecloud serve --config {CONFIG_NAME} --exit-at-end     (re-reads the feed; days already in the cloud are skipped)
-#   casecloud replay | scenario | checkpoint | backtest --config {CONFIG_NAME} ...
-# Relative paths are read from this file's directory, not from where a command runs.
+# The demo ran with exactly this file. Edit it and give its path to any command that takes --config
+# (serve, replay, scenario, checkpoint, backtest). `casecloud serve --config <this file> --exit-at-end`
+# picks the feed up after the last record the cloud has seen: append days to observations.ndjson first.
+# Relative paths below are read from this file's directory, not from where a command runs.
 transport = "file"                  # "kafka" reads and publishes through a broker ([kafka] table)
 
 [service]
@@ -85,7 +85,7 @@ output_dir = "."                    # estimates.ndjson, alerts.ndjson, dead_lett
 [[streams]]
 id = "{DEMO_STREAM}"
 model = "seir_two_band"             # a shipped example model, or the path of a model spec TOML
-start = "{DEMO_START.isoformat()}"              # calendar date of model day 0
+start = "{DEMO_START.isoformat()}"                # calendar date of model day 0
 particles = {int(particles)}
 forecast_trajectories = 400
 

@@ -80,7 +80,7 @@ def run_bench(
             shown.update(done, len(sections), note=name)
 
             def say(message: str, name: str = name, done: int = done) -> None:
-                shown.update(done, note=f"{name}: {message}")
+                shown.update(done, note=message if message.startswith(f"{name}:") else f"{name}: {message}")
                 if progress is not None:
                     progress(message)
 
