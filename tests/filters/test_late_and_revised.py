@@ -1,0 +1,177 @@
+"""Late and revised values against exact likelihoods.
+
+* Arrival order does not matter: on the linear-Gaussian local-level model,
+  observations delivered shuffled inside the assimilation window give a summed
+  log-evidence equal to the exact Kalman-filter log-likelihood of the ordered
+  data (statsmodels; Durbin & Koopman 2012, section 7.2): the joint likelihood of
+  conditionally independent observations does not depend on their arrival order.
+* Exact forward algorithm (Rabiner 1989, "A tutorial on hidden Markov models",
+  the forward recursion) on a closed chain-binomial SIR of 40 people with one
+  sub-step a day, a finite state space (S, I). The filter's log-evidence must
+  agree, first for final counts, then for the same counts delivered as
+  revisions: Poisson thinning (Kingman 1993, *Poisson Processes*, section 5.1)
+  makes the two increments of a count independent Poisson variables, so their
+  joint log-likelihood is the final count's plus sum log Binomial(a; y, F), a
+  constant computed here.
+
+Tolerances: the particle filter's likelihood estimate Z is unbiased, so log Z
+has mean log Z_true - s^2/2 to first order (delta method, common practice),
+with s the spread of log Z over replicates; each check allows that shift plus
+4 standard errors of the replicate mean (a false alarm rate below 1e-4 under
+normality).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from scipy import stats
+from statsmodels.datasets import nile
+
+from filters import CompartmentalModel, FilterConfig, LocalLevelModel, ParticleFilter, Report, reporting_cdf, simulate_season
+from schemas import load_model_spec
+
+SPECS = Path(__file__).parent / "specs"
+
+# Durbin & Koopman (2012), ch. 2: ML variances for the Nile data (from memory), as in test_kalman_reference.py.
+OBS_VAR, LEVEL_VAR = 15099.0, 1469.1
+X0_MEAN, X0_VAR = 1000.0, 1.0e5
+
+
+def _agrees(estimates: list[float], exact: float) -> tuple[bool, str]:
+    est = np.asarray(estimates)
+    s = est.std(ddof=1)
+    shift = -0.5 * s * s
+    tol = 4 * s / np.sqrt(est.size) + 1e-9
+    gap = est.mean() - (exact + shift)
+    return abs(gap) <= tol, f"mean {est.mean():.4f}, exact {exact:.4f}, shift {shift:.4f}, gap {gap:.4f}, tol {tol:.4f}"
+
+
+# --------------------------------------------------------------- order free
+def test_shuffled_arrival_inside_the_window_matches_the_kalman_likelihood():
+    y = nile.load_pandas().data["volume"].to_numpy(dtype=float)[:40]
+    mod = sm.tsa.UnobservedComponents(y, level="local level")
+    mod.initialize_known(np.array([X0_MEAN]), np.array([[X0_VAR + LEVEL_VAR]]))
+    mod.loglikelihood_burn = 0
+    exact = float(mod.loglike(np.array([OBS_VAR, LEVEL_VAR])))
+    model = LocalLevelModel(LEVEL_VAR, OBS_VAR, X0_MEAN, X0_VAR, window_days=4)
+    order_rng = np.random.default_rng(3)
+    estimates, moved_back = [], 0
+    for seed in range(8):
+        pf = ParticleFilter(model, FilterConfig(n_particles=10_000), np.random.default_rng(seed))
+        order = []
+        for start in range(0, y.size, 4):  # blocks of 4 days, each delivered in a random order
+            block = list(range(start, min(start + 4, y.size)))
+            order_rng.shuffle(block)
+            order += block
+        for i in order:
+            moved_back += int(i + 1 < pf.time)
+            pf.assimilate(i + 1, [Report("y", i + 1, float(y[i]))], with_summary=False)
+        assert pf.time == y.size
+        estimates.append(pf.log_evidence)
+    assert moved_back > 20  # many values really arrived after the cloud had passed their day
+    ok, text = _agrees(estimates, exact)
+    assert ok, text
+
+
+def test_a_value_outside_the_window_is_refused():
+    model = LocalLevelModel(LEVEL_VAR, OBS_VAR, X0_MEAN, X0_VAR, window_days=2)
+    pf = ParticleFilter(model, FilterConfig(n_particles=50), np.random.default_rng(1))
+    pf.assimilate(5, [Report("y", 5, 1000.0)])
+    with pytest.raises(ValueError, match="outside the window of 2 days"):
+        pf.assimilate(5, [Report("y", 2, 1000.0)])
+
+
+# ------------------------------------------------------- forward algorithm
+def _tiny() -> CompartmentalModel:
+    return CompartmentalModel(load_model_spec(SPECS / "sir_tiny.toml"))
+
+
+def _forward(y: np.ndarray, n: int = 40, i0: int = 3, beta: float = 1.2, gamma: float = 0.4, rho: float = 0.7) -> float:
+    """Exact log-likelihood of daily counts y_t ~ Poisson(rho * new infections on day t)."""
+    alpha = np.zeros((n + 1, n + 1))  # alpha[S, I]
+    alpha[n - i0, i0] = 1.0
+    p_rec = 1 - np.exp(-gamma)
+    loglik = 0.0
+    for obs in y:
+        new = np.zeros_like(alpha)
+        for s, i in zip(*np.nonzero(alpha)):
+            p_inf = 1 - np.exp(-beta * i / n)
+            inf = np.arange(s + 1)
+            rec = np.arange(i + 1)
+            w = alpha[s, i] * stats.binom.pmf(inf, s, p_inf) * stats.poisson.pmf(obs, rho * inf)
+            joint = np.outer(w, stats.binom.pmf(rec, i, p_rec))  # (inf, rec)
+            for k in range(s + 1):
+                if w[k] > 0:
+                    np.add.at(new, (s - k, i + k - rec), joint[k])
+        total = new.sum()
+        loglik += np.log(total)
+        alpha = new / total
+    return float(loglik)
+
+
+@pytest.fixture(scope="module")
+def tiny_season():
+    model = _tiny()
+    season = simulate_season(model, 18, np.random.default_rng(2024))
+    y = np.array([o.values["cases"] for o in season.observations])
+    assert y.sum() >= 10, "the simulated outbreak should take off (seed chosen so it does)"
+    return y, _forward(y)
+
+
+def test_final_counts_match_the_forward_algorithm(tiny_season):
+    y, exact = tiny_season
+    model = _tiny()
+    estimates = []
+    for seed in range(8):
+        pf = ParticleFilter(model, FilterConfig(n_particles=4000), np.random.default_rng(seed))
+        for t, value in enumerate(y, start=1):
+            pf.assimilate(t, [Report("cases", t, float(value))], with_summary=False)
+        estimates.append(pf.log_evidence)
+    ok, text = _agrees(estimates, exact)
+    assert ok, text
+
+
+def test_the_same_counts_as_revisions_match_the_forward_algorithm_plus_the_thinning_constant(tiny_season):
+    # Day t's count is first reported as of day t + 1 (a binomial share F(1) of it, drawn
+    # here), and completed three days later. The exact log-likelihood of the two
+    # increments is the final count's plus sum log Binomial(a_t; y_t, F(1)).
+    y, exact = tiny_season
+    model = _tiny()
+    f1 = float(reporting_cdf("gamma", 2.0, 1.0, 5)[0, 1])
+    assert 0.05 < f1 < 0.5
+    first = np.random.default_rng(77).binomial(y.astype(int), f1)
+    constant = float(stats.binom.logpmf(first, y.astype(int), f1).sum())
+    days = y.size
+    estimates, lagged = [], 0
+    for seed in range(8):
+        pf = ParticleFilter(model, FilterConfig(n_particles=4000), np.random.default_rng(seed))
+        for now in range(1, days + 4):
+            reports = []
+            if 1 <= now - 1 <= days:  # partial for yesterday, known as of today
+                reports.append(Report("cases_by_event", now - 1, float(first[now - 2]), as_of=now))
+            if 1 <= now - 3 <= days:  # the rest of the count of three days ago
+                d = now - 3
+                reports.append(Report("cases_by_event", d, float(y[d - 1]), None, float(first[d - 1]), d + 1))
+            lagged += sum(r.time < now for r in reports)
+            pf.assimilate(now, reports, with_summary=False)
+        estimates.append(pf.log_evidence)
+    assert lagged == 8 * 2 * days  # every value arrived after its day
+    ok, text = _agrees(estimates, exact + constant)
+    assert ok, text
+    # the constant matters: without it (a filter that took each revision as the whole count,
+    # or ignored the partial reports) the check could not pass
+    assert abs(constant) > 10 * (4 * np.std(estimates, ddof=1) / np.sqrt(len(estimates)))
+
+
+def test_reporting_cdf_is_the_rounded_and_truncated_gamma():
+    # scipy's gamma cdf (shape (m/s)^2, scale s^2/m) at the rounding edges, renormalised at max_days.
+    cdf = reporting_cdf("gamma", np.array([2.0, 6.0]), np.array([1.0, 3.0]), 5)
+    for row, (m, s) in zip(cdf, [(2.0, 1.0), (6.0, 3.0)]):
+        g = stats.gamma((m / s) ** 2, scale=s * s / m).cdf
+        edges = np.array([0.5, 1.5, 2.5, 3.5, 4.5, 5.5])
+        want = g(edges) / g(5.5)
+        np.testing.assert_allclose(row, want, rtol=1e-12)
