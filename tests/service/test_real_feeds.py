@@ -178,6 +178,8 @@ def test_revisions_add_only_their_increment_and_each_vintage_gets_its_outcome(tm
     assert run.reasons()[14:] == [None, None, "duplicate_period", "stale_vintage", "conflicting_vintage", "lower_total", None]
     assert run.runtime.known["lab_confirmed"] == {6: (9.0, 12), 13: (2.0, 14)}
     assert run.sample("casecloud_revisions_total", stream=STREAM) == 1.0
+    # the reporting delay's mean is a parameter with a prior: its posterior is published like the others
+    assert "lab_delay" in run.estimates()[-1].quantities
     assert run.sample("casecloud_messages_skipped_total", stream=STREAM, reason="stale_vintage") == 1.0
     assert [letter.reason for letter in run.letters()] == ["conflicting_vintage", "lower_total"]
     assert "below the 9 already assimilated" in run.letters()[1].message
