@@ -65,8 +65,10 @@ def demo_config_toml(particles: int) -> str:
     return f"""\
 # casecloud deployment config, written by `casecloud demo` for the fictional Brackenford district.
 # The demo ran with exactly this file. Edit it and give its path to any command that takes --config
-# (serve, replay, scenario, checkpoint, backtest). `casecloud serve --config <this file> --exit-at-end`
-# picks the feed up after the last record the cloud has seen: append days to observations.ndjson first.
+# (serve, replay, scenario, checkpoint, backtest). `casecloud serve --config <this file> --exit-at-end`,
+# run from the directory the demo ran in, picks the feed up after the last record the cloud has seen
+# (append days to observations.ndjson first): the file transport keys its position by the input path
+# as the command sees it.
 # Relative paths below are read from this file's directory, not from where a command runs.
 transport = "file"                  # "kafka" reads and publishes through a broker ([kafka] table)
 
