@@ -14,7 +14,7 @@ from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._nowcast import NowcastEntry, nowcast
 from ._particles import ParticleSet
-from ._reports import Report, reporting_cdf
+from ._reports import Report, ReportingCdfTable, reporting_cdf
 from ._pmmh import (
     CalibrationParameter,
     CalibrationResult,
@@ -96,6 +96,7 @@ __all__ = [
     "NowcastEntry",
     "nowcast",
     "Report",
+    "ReportingCdfTable",
     "reporting_cdf",
     "RESAMPLERS",
     "CAUTION",

@@ -29,7 +29,7 @@ from ._observation import (
     poisson_loglik,
 )
 from ._particles import ParticleSet
-from ._reports import Report, reporting_cdf
+from ._reports import Report, ReportingCdfTable, reporting_cdf
 from ._priors import from_unconstrained, sample_prior, to_unconstrained
 
 __all__ = ["CompartmentalModel", "ModelError"]
@@ -281,6 +281,7 @@ class CompartmentalModel:
             )
         self.history_days = history_days
         self._series_by_name = {s.name: s for s in self.series}
+        self._cdf_tables: dict[str, ReportingCdfTable] = {}  # built on first use
         self._infected = self._infected_compartments()
         self._plan_dynamics()
 
@@ -882,12 +883,20 @@ class CompartmentalModel:
         if as_of is None:
             return np.ones((1, days))
         dist, (mean, mean_p), (sd, sd_p), max_days = s.rdelay  # type: ignore[misc]
-        cdf = reporting_cdf(
-            dist,
-            particles.params[:, mean_p] if mean_p is not None else mean,
-            particles.params[:, sd_p] if sd_p is not None else sd,
-            max_days,
-        )
+        if (mean_p is None) != (sd_p is None):  # one of them varies by particle: interpolate a table
+            table = self._cdf_tables.get(s.name)
+            if table is None:
+                table = self._cdf_tables[s.name] = ReportingCdfTable(
+                    dist, None if mean_p is not None else mean, None if sd_p is not None else sd, max_days
+                )
+            cdf = table(particles.params[:, mean_p if mean_p is not None else sd_p])
+        else:
+            cdf = reporting_cdf(
+                dist,
+                particles.params[:, mean_p] if mean_p is not None else mean,
+                particles.params[:, sd_p] if sd_p is not None else sd,
+                max_days,
+            )
         elapsed = as_of - (time - np.arange(days))  # days since each event day
         share = cdf[:, np.clip(elapsed, 0, max_days)]
         share[:, elapsed < 0] = 0.0

@@ -66,7 +66,7 @@ def nowcast(
                 remaining = model.sample_increment(particles, pending, now, rng).astype(float)
                 expected_pending = float(weights @ model.report_mean(particles, pending, now))
             eventual = total + remaining
-            mean = float(weights @ eventual)
+            mean = float(total + weights @ remaining)
             q = weighted_quantiles(eventual, weights, probs_arr)
             out.append(
                 NowcastEntry(

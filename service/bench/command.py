@@ -15,6 +15,7 @@ import orjson
 
 from ..console import Progress
 from .common import SectionResult
+from .feeds import bench_feeds
 from .forecast import bench_forecast
 from .update import bench_update
 
@@ -26,10 +27,18 @@ def _bench_service(**kwargs: Any) -> SectionResult:
     return bench_service(**kwargs)
 
 
+def _bench_service_feeds(**kwargs: Any) -> SectionResult:
+    from .end_to_end import bench_service
+
+    return bench_service(feeds=3, **kwargs)
+
+
 SECTIONS: dict[str, Callable[..., SectionResult]] = {
     "update": bench_update,
     "service": _bench_service,
     "forecast": bench_forecast,
+    "feeds": bench_feeds,
+    "service_feeds": _bench_service_feeds,
 }
 PRIMARY_SECTION = "update"
 
@@ -185,6 +194,7 @@ def run_bench_command(args: argparse.Namespace) -> int:
     options: dict[str, dict[str, Any]] = {}
     if getattr(args, "kafka_bootstrap", None):
         options["service"] = {"bootstrap": args.kafka_bootstrap}
+        options["service_feeds"] = {"bootstrap": args.kafka_bootstrap}
     try:
         with Progress("bench", len(sections), "sections") as shown:
             report = run_bench(particles=particles, repeats=repeats, sections=sections, options=options, shown=shown)
@@ -205,10 +215,12 @@ def add_bench_parser(sub) -> None:
     bench.add_argument("--repeats", type=int, default=5, help="timed repetitions per figure (median reported)")
     bench.add_argument(
         "--sections",
-        default="update,service,forecast",
+        default="update,service,forecast,feeds",
         help="comma-separated workloads: update (filter step vs floor and naive loop), "
         "service (end to end through Kafka vs the engine alone), forecast (3 intervention scenarios "
-        "with common random numbers vs their binomial floor); default: update,service,forecast",
+        "with common random numbers vs their binomial floor), feeds (a late value and a revision vs "
+        "a daily step), service_feeds (the service section with three feeds per stream); "
+        "default: update,service,forecast,feeds",
     )
     bench.add_argument("--kafka-bootstrap", help="service section: use this broker instead of starting a local one")
     bench.set_defaults(handler=run_bench_command)

@@ -45,6 +45,8 @@ import orjson
 from filters import CompartmentalModel, simulate_season
 from schemas import DeploymentConfig, example_model_path, load_model_spec
 
+from .feeds import FEEDS_SPEC, feed_messages
+
 __all__ = ["bench_service", "OVERHEAD_RATIO_MAX"]
 
 OVERHEAD_RATIO_MAX = 0.25
@@ -53,7 +55,7 @@ START = dt.date(2025, 9, 1)
 BROKER_PY = Path(__file__).resolve().parents[2] / "deploy" / "kafka" / "broker.py"
 
 
-def _config(root: Path, particles: int, bootstrap: str, topic: str) -> DeploymentConfig:
+def _config(root: Path, particles: int, bootstrap: str, topic: str, spec: str = "seir_two_band") -> DeploymentConfig:
     return DeploymentConfig.model_validate(
         {
             "transport": "kafka",
@@ -71,7 +73,7 @@ def _config(root: Path, particles: int, bootstrap: str, topic: str) -> Deploymen
             "streams": [
                 {
                     "id": STREAM,
-                    "model": "seir_two_band",
+                    "model": spec,
                     "start": START.isoformat(),
                     "particles": particles,
                     "forecast_trajectories": 500,
@@ -169,13 +171,20 @@ def bench_service(
     progress: Callable[[str], None] | None = None,
     messages: int = 30,
     bootstrap: str | None = None,
+    feeds: int = 1,
 ):
+    """``feeds=1``: one message a day with both ED series (``seir_two_band``). ``feeds=3``:
+    ``seir_two_band_lab`` fed as three feeds (ED child, ED adult, weekly lab totals as of
+    each day, revised as reports arrive), ``messages`` days of them."""
     from ..runtime.streams import StreamRegistry
     from ..state import LocalCheckpointStore
     from .common import SectionResult, Target
 
     say = progress or (lambda _: None)
-    feed = _messages(messages)
+    if feeds not in (1, 3):
+        raise ValueError(f"feeds must be 1 or 3, got {feeds}")
+    spec = "seir_two_band" if feeds == 1 else FEEDS_SPEC
+    feed = _messages(messages) if feeds == 1 else feed_messages(STREAM, START, messages, seed=4)
     with tempfile.TemporaryDirectory(prefix="casecloud-bench-") as tmp:
         root = Path(tmp)
         broker = None
@@ -186,14 +195,14 @@ def bench_service(
             bootstrap = broker.bootstrap_servers
         try:
             topic = f"bench-{uuid.uuid4().hex[:8]}"
-            config = _config(root, particles, bootstrap, topic)
-            say(f"service: engine alone, {messages} messages")
+            config = _config(root, particles, bootstrap, topic, spec)
+            say(f"service: engine alone, {len(feed)} messages")
             engine = _engine_seconds(config, feed, root)
             if broker is not None:
                 broker.create_topic(topic, 1)
             asyncio.run(_produce(bootstrap, topic, feed))
-            say(f"service: through Kafka, {messages} messages")
-            per_message, engine_in_run, applied = asyncio.run(_service_seconds(config, messages))
+            say(f"service: through Kafka, {len(feed)} messages")
+            per_message, engine_in_run, applied = asyncio.run(_service_seconds(config, len(feed)))
         finally:
             if broker is not None:
                 broker.stop()
@@ -216,7 +225,8 @@ def bench_service(
     # reported beside it.
     overhead = (per_message - engine_in_run) / engine_in_run
     figures: dict[str, Any] = {
-        "workload": {"spec": "seir_two_band", "particles": particles, "messages": messages, "alert_rules": 1, "forecast_trajectories": 500},
+        "workload": {"spec": spec, "particles": particles, "days": messages, "feeds": feeds, "messages": len(feed),
+                     "alert_rules": 1, "forecast_trajectories": 500},
         "applied": applied,
         "engine_alone_seconds_per_message": engine_per_message,
         "engine_in_service_seconds_per_message": engine_in_run,

@@ -224,3 +224,15 @@ def test_the_reporting_delay_is_learned_from_the_revisions():
     lo, hi = delay[order][np.searchsorted(cum, 0.05)], delay[order][np.searchsorted(cum, 0.95)]
     assert lo <= truth <= hi, (lo, mean, hi)
     assert sd < prior_sd / 3, (sd, prior_sd)  # the data, not the prior, set the answer
+
+
+def test_the_interpolated_reporting_cdf_matches_the_direct_one():
+    # Bug caught: an off-by-one grid cell or interpolation in the wrong scale (errors of 1e-2).
+    from filters import ReportingCdfTable
+
+    values = np.random.default_rng(1).uniform(0.3, 60.0, 5000)
+    for dist in ("gamma", "lognormal"):
+        by_mean = ReportingCdfTable(dist, None, 3.0, 21)
+        np.testing.assert_allclose(by_mean(values), reporting_cdf(dist, values, 3.0, 21), atol=1e-5, rtol=0)
+        by_sd = ReportingCdfTable(dist, 4.0, None, 14)
+        np.testing.assert_allclose(by_sd(values), reporting_cdf(dist, 4.0, values, 14), atol=1e-5, rtol=0)

@@ -201,3 +201,16 @@ def test_naive_dynamics_match_the_engine_in_distribution(cloud):
     # The comparison has power: incidence is in the hundreds and varies.
     inc = quantities["incidence child"][0]
     assert inc.mean() > 50 and inc.var() > 10
+
+
+def test_feeds_section_times_late_values_and_revisions_against_a_daily_step():
+    # Bug caught: a section that times the wrong work (e.g. a "late" value that moves the
+    # cloud, which would cost as much as the daily step) or reports no targets.
+    report = run_bench(particles=200, repeats=1, sections=("feeds",), options={"feeds": {"warmup_days": 21}})
+    figures = report["feeds"]
+    assert figures["workload"]["window_days"] == 21 and figures["workload"]["history_days"] == 28
+    for key in ("daily_step_seconds", "late_value_seconds", "revision_seconds", "late_ratio", "revision_ratio"):
+        assert isinstance(figures[key], float) and math.isfinite(figures[key]) and figures[key] > 0, key
+    assert figures["late_ratio"] == pytest.approx(figures["late_value_seconds"] / figures["daily_step_seconds"])
+    assert set(report["targets"]) == {"feeds.late_ratio", "feeds.revision_ratio"}
+    assert all(t["max"] == 0.2 for t in report["targets"].values())
