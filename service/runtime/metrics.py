@@ -65,6 +65,9 @@ class Metrics:
         self.distinct_paths = Gauge(
             "casecloud_distinct_paths", "Distinct particle ancestors at the oldest day of the assimilation window", ["stream"], registry=r
         )
+        self.distinct_paths_ratio = Gauge(
+            "casecloud_distinct_paths_ratio", "Distinct ancestors at the oldest day of the window divided by particle count", ["stream"], registry=r
+        )
         self.late_values = Counter("casecloud_late_values", "Series values assimilated for a past period (inside the window)", ["stream"], registry=r)
         self.revisions = Counter("casecloud_revisions", "Revised totals whose increment was assimilated", ["stream"], registry=r)
         self.alerts = Counter("casecloud_alert_events", "Alert messages published", ["stream", "rule", "status"], registry=r)

@@ -353,6 +353,7 @@ class RecordProcessor:
         m.mark_updated(sid)
         paths = runtime.filter.distinct_paths()
         m.distinct_paths.labels(sid).set(paths)
+        m.distinct_paths_ratio.labels(sid).set(paths / runtime.filter.config.n_particles)
         late = sum(1 for r in plan.reports if r.time < plan.time)
         if late:
             m.late_values.labels(sid).inc(late)
