@@ -31,8 +31,19 @@ period before the stream's start           ``2025-12-31``                ``bad_p
 gap longer than ``max_gap_days``           60 days on, limit 10          ``bad_period``
 period after today + ``max_future_days``   ``2026-03-04``                ``future``
 oversized (> ``max_message_bytes``)        600 bytes, limit 512          ``oversized``
-late (older than the latest period)        day 3 after day 5             ``late``
+late (older than the assimilation window;  day 3 after day 5             ``late``
+the sir example's window is 0 days)
+as-of date before the period               period day 6, as of day 5     ``bad_as_of``
+as-of date after today + max_future_days   ``"as_of": "2026-03-09"``     ``bad_as_of``
+as-of that is not a calendar date          ``"as_of": "2026-02-30"``     ``schema``
+weekly period for a daily series           ``2026-W02`` for ``cases``    ``cadence``
+a series twice in one message              ``{"cases": 3, "cases": 4}``  ``duplicate_series``
+another total for a period already         day 5 again, 99 instead of 10 ``not_revisable``
+assimilated, series dated by report
 =========================================  ============================  ================
+
+Revisions of event-dated series (``lower_total``, ``conflicting_vintage``, a stale
+vintage skipped) need a series counted by event date: see test_real_feeds.py.
 
 (A re-sent period is *skipped*, not dead-lettered, and a re-delivered offset
 is skipped as already applied: see test_order_and_restart.py.)
@@ -236,3 +247,30 @@ def test_oversized_message(harness, kit):
 def test_late_period(harness, kit):
     letter = run_case(harness, kit, kit.obs(3), "late", [kit.period(3), kit.period(5)])
     assert letter.stream == kit.STREAM
+
+
+# ---------------------------------------------------------------- real feeds
+def test_as_of_before_the_period(harness, kit):
+    run_case(harness, kit, kit.obs(6, as_of=kit.period(5)), "bad_as_of", ["as_of", kit.period(5), "before period"])
+
+
+def test_as_of_in_the_future(harness, kit):
+    run_case(harness, kit, kit.obs(6, as_of="2026-03-09"), "bad_as_of", ["2026-03-09", "2026-03-03"])
+
+
+def test_as_of_not_a_date(harness, kit):
+    run_case(harness, kit, kit.obs(6, as_of="2026-02-30"), "schema", ["as_of", "2026-02-30"])
+
+
+def test_weekly_period_for_a_daily_series(harness, kit):
+    run_case(harness, kit, kit.obs("2026-W02"), "cadence", ["'cases'", "daily", "2026-W02"])
+
+
+def test_a_series_twice_in_one_message(harness, kit):
+    bad = b'{"stream":"' + kit.STREAM.encode() + b'","period":"' + kit.period(6).encode() + b'","counts":{"cases":3,"cases":4}}'
+    run_case(harness, kit, bad, "duplicate_series", ["'cases'", "twice"])
+
+
+def test_another_total_for_a_report_dated_series(harness, kit):
+    run_case(harness, kit, kit.obs(5, cases=99), "not_revisable", ["'cases'", "10 was assimilated", "dated_by"])
+
