@@ -29,7 +29,7 @@ recovery-sigkill / recovery-sigterm
     complete = every stream has every day. After SIGKILL the group only notices when the session
     times out (session_timeout_ms); SIGTERM leaves the group at once.
 
-Replicas share a checkpoint directory here, as scale-out requires (README,
+Replicas share a checkpoint directory here, as scale-out requires (deploy/README.md,
 "Scaling out"). On a 2-core machine the two replicas and the broker compete
 for the same cores: read the 2-replica figure as "what one more process
 adds here", not as cluster scaling.
