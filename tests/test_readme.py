@@ -1,6 +1,7 @@
 """The README's promises: its set-up section has exactly two commands, the
-test command sets up what it needs (tests/setup.sh) and is what CI runs, the
-cautions are stated, and the Python example of the analysts' guide runs."""
+test command sets up what it needs (tests/setup.sh: installs what is missing,
+or stops with one line before any test when it cannot) and is what CI runs,
+the cautions are stated, and the Python example of the analysts' guide runs."""
 
 from __future__ import annotations
 
@@ -82,9 +83,9 @@ def _path_without(tmp_path: Path, hidden: set[str], fakes: dict[str, str]) -> st
     return str(bindir)
 
 
-def _run_readme_command_where_kcat_cannot_be_installed(tmp_path: Path, hidden: set[str], fakes: dict[str, str]):
-    # A checkout of our own: the README's set-up script, and a .venv whose python would leave a
-    # mark if the command ever got as far as starting pytest.
+def _run_readme_command_without_kcat(tmp_path: Path, hidden: set[str], fakes: dict[str, str]):
+    # A checkout of our own: the README's set-up script, and a .venv whose python only records how
+    # it was called (so a test can tell whether the command got as far as starting pytest).
     root = tmp_path / "checkout"
     (root / "tests").mkdir(parents=True)
     shutil.copy2(ROOT / "tests" / "setup.sh", root / "tests" / "setup.sh")
@@ -114,13 +115,32 @@ def _assert_one_clear_line(done, marker: Path, because: str) -> None:
 
 
 def test_setup_stops_with_one_line_without_a_package_manager(tmp_path):
-    done, marker = _run_readme_command_where_kcat_cannot_be_installed(tmp_path, {"apt-get"}, {})
+    done, marker = _run_readme_command_without_kcat(tmp_path, {"apt-get"}, {})
     _assert_one_clear_line(done, marker, "no apt-get on PATH")
 
 
 def test_setup_stops_with_one_line_when_not_root_and_no_sudo(tmp_path):
     apt_called = tmp_path / "apt-get-called"
     fakes = {"id": "echo 1000", "apt-get": f'echo "$@" >> "{apt_called}"; exit 1'}
-    done, marker = _run_readme_command_where_kcat_cannot_be_installed(tmp_path, set(), fakes)
+    done, marker = _run_readme_command_without_kcat(tmp_path, set(), fakes)
     _assert_one_clear_line(done, marker, "not root and no password-less sudo")
     assert not apt_called.exists(), "apt-get was called without root"
+
+
+def test_setup_installs_what_is_missing_then_runs_pytest(tmp_path):
+    # kcat is missing and apt-get (a stand-in, run as root) provides it: the script updates the
+    # package lists, installs exactly the missing package, checks again and goes on to the tests.
+    bindir = tmp_path / "bin"
+    apt_log = tmp_path / "apt-get-calls"
+    kcat = shutil.which("kcat") or "/bin/true"
+    fakes = {
+        "id": "echo 0",
+        "apt-get": f'echo "$@" >> "{apt_log}"\ncase "$*" in *install*) ln -s "{kcat}" "{bindir}/kcat";; esac',
+    }
+    done, marker = _run_readme_command_without_kcat(tmp_path, set(), fakes)
+    assert done.returncode == 0, done.stderr
+    calls = apt_log.read_text().splitlines()
+    assert calls[0].endswith("update") and "install" in calls[1] and calls[1].split()[-1] == "kcat", calls
+    assert "tests/setup.sh: installing kcat (missing: kcat)" in done.stdout
+    # The checkout's stand-in .venv/bin/python answers every check; the last call is the suite.
+    assert marker.read_text().splitlines()[-1] == "-m pytest"
