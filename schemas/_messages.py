@@ -129,7 +129,7 @@ class NowcastPeriod(_Message):
 
 
 # ----------------------------------------------------------------------------- forecast block
-Number = float | None  # a rounded number; null where it is not finite
+Number = Annotated[float | None, WithJsonSchema({"type": ["number", "null"]})]  # rounded; null where not finite
 
 
 class ForecastSummary(_Message):
@@ -324,6 +324,7 @@ class DeadLetter(_Message):
         "lower_total",
         "not_revisable",
         "conflicting_vintage",
+        "needs_recovery",
     ]
     message: str
     stream: str | None = None
