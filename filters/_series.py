@@ -1,0 +1,333 @@
+"""Observed series shared by the model families: compiled once, then read from
+each particle's incidence history.
+
+A model that keeps its daily event counts in ``ParticleSet.history`` with shape
+(n_particles, history_days, n_slots, n_groups), newest day first, gets the whole
+observation layer (reporting fraction, delay kernel, weekly cadence, Poisson,
+negative-binomial or binomial noise, late values and revisions of event-dated
+series) by compiling its ``[[series]]`` tables with :func:`compile_series` and
+inheriting :class:`ObservedSeries`. The host sets ``series``,
+``_series_by_name``, ``_mask_groups`` (:func:`mask_groups`), ``_cdf_tables``
+(an empty dict), ``window_days`` and ``spec.name``. Prevalence series read
+``states[:, :, slot]``, the compartmental layout; other families declare
+incidence series only.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ._observation import (
+    Observation,
+    ObservationError,
+    _negbin_loglik,
+    _negbin_size_terms,
+    binomial_loglik,
+    delay_kernel,
+    poisson_loglik,
+)
+from ._particles import ParticleSet
+from ._reports import Report, ReportingCdfTable, reporting_cdf
+
+__all__ = ["MAX_COUNT", "ObservedSeries", "compile_series", "mask_groups"]
+
+# Counts above this are rejected as implausible for a surveillance series.
+MAX_COUNT = 1e9
+
+
+@dataclass(frozen=True)
+class _CompiledSeries:
+    name: str
+    kind: str
+    slot: int  # observed-flow slot (incidence) or compartment index (prevalence)
+    group_mask: np.ndarray  # (G,) of 0/1
+    weights: np.ndarray  # (L_s,) weights over history days (incidence)
+    reporting: float | int  # constant fraction, or parameter column if int via _param
+    reporting_param: int | None
+    noise: str
+    dispersion: float
+    dispersion_param: int | None
+    weekly: bool
+    kernel: np.ndarray  # (K,) daily delay kernel (before the weekly sum)
+    event_dated: bool = False
+    # Reporting delay of an event-dated series: dist, (mean const, param), (sd const, param), max days.
+    rdelay: tuple | None = None
+
+
+def compile_series(
+    series: Sequence[Any],
+    groups: list[str],
+    slot_of: Callable[[Any], int],
+    resolve: Callable[[Any, str], int | None],
+    window_days: int,
+) -> tuple[list[_CompiledSeries], int]:
+    """Compile ``[[series]]`` tables (``schemas.Series``) against a model's groups.
+
+    ``slot_of(series)`` gives the history slot (incidence) or compartment index
+    (prevalence); ``resolve(ref, where)`` the parameter column a name refers to
+    (None for a number), raising the model's error otherwise. Returns the
+    compiled series and the history length (days) the incidence series need.
+    """
+    out: list[_CompiledSeries] = []
+    history_days = 0
+    for s in series:
+        mask = np.zeros(len(groups))
+        for g in s.groups or groups:
+            mask[groups.index(g)] = 1.0
+        kernel = (
+            delay_kernel(s.delay.dist, s.delay.mean, s.delay.sd, s.delay.max_days)
+            if s.delay is not None
+            else np.ones(1)
+        )
+        weights = np.convolve(kernel, np.ones(7)) if s.cadence == "weekly" else kernel
+        if s.kind == "incidence":
+            history_days = max(history_days, weights.size + window_days)
+        rdelay = None
+        if s.reporting_delay is not None:
+            d = s.reporting_delay
+            mean_p = resolve(d.mean, f"series {s.name!r} reporting_delay.mean")
+            sd_p = resolve(d.sd, f"series {s.name!r} reporting_delay.sd")
+            rdelay = (
+                d.dist,
+                (float(d.mean) if mean_p is None else 0.0, mean_p),
+                (float(d.sd) if sd_p is None else 0.0, sd_p),
+                d.max_days,
+            )
+        rep_param = resolve(s.reporting, f"series {s.name!r} reporting")
+        disp_param = resolve(s.noise.dispersion, f"series {s.name!r} dispersion")
+        out.append(
+            _CompiledSeries(
+                name=s.name,
+                kind=s.kind,
+                slot=slot_of(s),
+                group_mask=mask,
+                weights=weights,
+                reporting=s.reporting if rep_param is None else 0.0,  # type: ignore[arg-type]
+                reporting_param=rep_param,
+                noise=s.noise.dist,
+                dispersion=float(s.noise.dispersion) if disp_param is None and s.noise.dispersion is not None else 0.0,
+                dispersion_param=disp_param,
+                weekly=s.cadence == "weekly",
+                kernel=kernel,
+                event_dated=s.dated_by == "event",
+                rdelay=rdelay,
+            )
+        )
+    return out, history_days
+
+
+def mask_groups(series: Sequence[_CompiledSeries]) -> dict[str, np.ndarray | None]:
+    """Groups of each series when its mask is 0/1 (always, as compiled); None otherwise."""
+    out: dict[str, np.ndarray | None] = {}
+    for s in series:
+        groups = np.flatnonzero(s.group_mask)
+        out[s.name] = groups if np.all(s.group_mask[groups] == 1.0) else None
+    return out
+
+
+class ObservedSeries:
+    """The observation layer over ``history`` (see the module docstring)."""
+
+    series: list[_CompiledSeries]
+    window_days: int
+    spec: Any
+    _series_by_name: dict[str, _CompiledSeries]
+    _mask_groups: dict[str, np.ndarray | None]
+    _cdf_tables: dict[str, ReportingCdfTable]
+
+    def check_observation(self, observation: Observation) -> None:
+        for name, value in observation.values.items():
+            if name not in self._series_by_name:
+                raise ObservationError(
+                    f"series {name!r} is not observed by model {self.spec.name!r}; "
+                    f"allowed: {sorted(self._series_by_name)}"
+                )
+            if value is None:
+                continue
+            v = float(value)
+            if not math.isfinite(v) or v < 0 or v != math.floor(v) or v > MAX_COUNT:
+                raise ObservationError(
+                    f"series {name!r} has count {value!r}; counts must be whole numbers "
+                    f"between 0 and {MAX_COUNT:.0e}"
+                )
+
+    def series_named(self, name: str) -> _CompiledSeries:
+        """The compiled series ``name`` (its kind, cadence, dating); KeyError if unknown."""
+        return self._series_by_name[name]
+
+    def _column(self, params: np.ndarray, col: int | None, const: float) -> np.ndarray | float:
+        return params[:, col] if col is not None else const
+
+    def expected(self, particles: ParticleSet, series: str) -> np.ndarray:
+        """Expected reported count (incidence) or true size (prevalence) per particle."""
+        s = self._series_by_name[series]
+        rho = self._column(particles.params, s.reporting_param, s.reporting)
+        if s.kind == "prevalence":
+            return rho * (particles.states[:, :, s.slot] @ s.group_mask)
+        return rho * (self._daily(particles, s) @ s.weights)
+
+    def _daily(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0, length: int | None = None) -> np.ndarray:
+        """Daily counts of the series' flow over its groups, (n, L) float, newest first.
+
+        Equal to ``history[:, :L, slot, :] @ group_mask`` (the mask is 0/1 and the
+        counts are whole numbers, so the sum is exact in any order), without the
+        per-row overhead of a stacked matrix product.
+        """
+        block = particles.history[:, lag : lag + (s.weights.size if length is None else length), s.slot, :]
+        groups = self._mask_groups[s.name]
+        if groups is None or block.dtype.kind not in "iu":
+            return block @ s.group_mask
+        if groups.size == 0:
+            return np.zeros(block.shape[:2])
+        total = block[:, :, groups[0]]
+        for g in groups[1:]:
+            total = total + block[:, :, g]
+        return np.array(total, dtype=float, order="C")
+
+    def _trials(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0) -> np.ndarray:
+        if s.kind == "prevalence":
+            return particles.states[:, :, s.slot] @ s.group_mask.astype(np.int64)
+        return particles.history[:, lag : lag + s.weights.size, s.slot, :] @ s.group_mask.astype(np.int64) @ np.ones(
+            s.weights.size, dtype=np.int64
+        )
+
+    def log_likelihood(self, particles: ParticleSet, observation: Observation) -> np.ndarray:
+        self.check_observation(observation)
+        total = np.zeros(particles.size)
+        size_terms: dict = {}  # negative-binomial size terms, shared by series with one size
+        for name, y in observation.present().items():
+            s = self._series_by_name[name]
+            y = float(y)
+            if s.noise == "binomial":
+                rho = self._column(particles.params, s.reporting_param, s.reporting)
+                total += binomial_loglik(y, self._trials(particles, s), rho)
+                continue
+            mu = self.expected(particles, name)
+            if s.noise == "poisson":
+                total += poisson_loglik(y, mu)
+            else:
+                key = ("param", s.dispersion_param) if s.dispersion_param is not None else ("value", s.dispersion)
+                if key not in size_terms:
+                    k = self._column(particles.params, s.dispersion_param, s.dispersion)
+                    size_terms[key] = _negbin_size_terms(k)
+                total += _negbin_loglik(y, mu, size_terms[key])
+        return total
+
+    # ----------------------------------------------------- late and revised
+    def check_report(self, report: Report, now: int) -> None:
+        """Raise ObservationError if ``report`` cannot be assimilated by a cloud standing at day ``now``."""
+        self.check_observation(Observation(report.time, {report.series: report.value}))
+        s = self._series_by_name[report.series]
+        lag = now - report.time
+        if lag < 0:
+            raise ObservationError(f"series {s.name!r}: day {report.time} is ahead of the cloud's day {now}; move the cloud first")
+        if lag > self.window_days:
+            raise ObservationError(
+                f"series {s.name!r}: day {report.time} is {lag} days before the cloud's day {now}; "
+                f"the assimilation window keeps {self.window_days} days"
+            )
+        if s.kind == "prevalence" and lag > 0:
+            raise ObservationError(f"series {s.name!r} is a prevalence snapshot: only the cloud's current day can be assimilated")
+        if not s.event_dated and (report.previous or report.as_of is not None):
+            raise ObservationError(f"series {s.name!r} is dated by report: its counts are final on arrival and are not revised")
+        if report.increment < 0:
+            raise ObservationError(f"series {s.name!r}: total {report.value} is below the {report.previous} already assimilated")
+
+    def _event_means(self, particles: ParticleSet, s: _CompiledSeries, lag: int) -> np.ndarray:
+        """Eventual expected count of each event day of the period, (n, days), newest day first."""
+        rho = self._column(particles.params, s.reporting_param, s.reporting)
+        days = 7 if s.weekly else 1
+        k = s.kernel.size
+        out = np.empty((particles.size, days))
+        for i in range(days):
+            out[:, i] = self._daily(particles, s, lag + i, k) @ s.kernel
+        return out * np.reshape(rho, (-1, 1))
+
+    def _reported_share(self, particles: ParticleSet, s: _CompiledSeries, time: int, as_of: int | None) -> np.ndarray:
+        """F(as_of - j) for each event day j of the period ending on ``time``: (n or 1, days)."""
+        days = 7 if s.weekly else 1
+        if as_of is None:
+            return np.ones((1, days))
+        dist, (mean, mean_p), (sd, sd_p), max_days = s.rdelay  # type: ignore[misc]
+        if (mean_p is None) != (sd_p is None):  # one of them varies by particle: interpolate a table
+            table = self._cdf_tables.get(s.name)
+            if table is None:
+                table = self._cdf_tables[s.name] = ReportingCdfTable(
+                    dist, None if mean_p is not None else mean, None if sd_p is not None else sd, max_days
+                )
+            cdf = table(particles.params[:, mean_p if mean_p is not None else sd_p])
+        else:
+            cdf = reporting_cdf(
+                dist,
+                particles.params[:, mean_p] if mean_p is not None else mean,
+                particles.params[:, sd_p] if sd_p is not None else sd,
+                max_days,
+            )
+        elapsed = as_of - (time - np.arange(days))  # days since each event day
+        share = cdf[:, np.clip(elapsed, 0, max_days)]
+        share[:, elapsed < 0] = 0.0
+        return share
+
+    def report_mean(self, particles: ParticleSet, report: Report, now: int) -> np.ndarray:
+        """Expected value of the report's increment per particle (what it adds to what was known)."""
+        s = self._series_by_name[report.series]
+        lag = now - report.time
+        if s.kind == "prevalence":
+            return self.expected(particles, s.name)
+        if not s.event_dated:
+            rho = self._column(particles.params, s.reporting_param, s.reporting)
+            return rho * (self._daily(particles, s, lag) @ s.weights)
+        means = self._event_means(particles, s, lag)
+        share = self._reported_share(particles, s, report.time, report.as_of)
+        if report.previous_as_of is not None or report.previous:
+            share = share - self._reported_share(particles, s, report.time, report.previous_as_of)
+        return (means * share).sum(axis=1)
+
+    def report_log_likelihood(self, particles: ParticleSet, report: Report, now: int) -> np.ndarray:
+        """Per-particle log-likelihood of a report's increment, the cloud standing at day ``now``.
+
+        The value of a past period is judged against each particle's own
+        retained path (``history``), so nothing is re-simulated.
+        """
+        self.check_report(report, now)
+        s = self._series_by_name[report.series]
+        y = report.increment
+        if s.noise == "binomial":
+            rho = self._column(particles.params, s.reporting_param, s.reporting)
+            return binomial_loglik(y, self._trials(particles, s, now - report.time), rho)
+        mu = self.report_mean(particles, report, now)
+        if s.noise == "poisson":
+            return poisson_loglik(y, mu)
+        k = self._column(particles.params, s.dispersion_param, s.dispersion)
+        return _negbin_loglik(y, mu, _negbin_size_terms(k))
+
+    def sample_increment(self, particles: ParticleSet, report: Report, now: int, rng: np.random.Generator) -> np.ndarray:
+        """Draw the increment a report would carry, per particle (for nowcasts: the reports still to come)."""
+        s = self._series_by_name[report.series]
+        mu = self.report_mean(particles, report, now)
+        if s.noise == "negbin":
+            k = np.broadcast_to(self._column(particles.params, s.dispersion_param, s.dispersion), mu.shape)
+            return rng.poisson(rng.gamma(k, np.where(mu > 0, mu, 0.0) / k))
+        return rng.poisson(np.where(mu > 0, mu, 0.0))
+
+    def sample_observation(self, particles: ParticleSet, rng: np.random.Generator) -> dict[str, np.ndarray]:
+        """Draw one set of reported counts per particle from the observation model."""
+        out = {}
+        for s in self.series:
+            rho = self._column(particles.params, s.reporting_param, s.reporting)
+            if s.noise == "binomial":
+                out[s.name] = rng.binomial(self._trials(particles, s), rho)
+                continue
+            mu = self.expected(particles, s.name)
+            if s.noise == "poisson":
+                out[s.name] = rng.poisson(mu)
+            else:
+                k = np.broadcast_to(self._column(particles.params, s.dispersion_param, s.dispersion), mu.shape)
+                # Gamma-Poisson mixture: mean mu, variance mu + mu^2 / k.
+                out[s.name] = rng.poisson(rng.gamma(k, np.where(mu > 0, mu, 0.0) / k))
+        return out
