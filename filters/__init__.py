@@ -13,6 +13,8 @@ from ._linear_gaussian import LocalLevelModel
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._nowcast import NowcastEntry, nowcast
+from ._nowcast_draws import nowcast_draws
+from ._chain_ladder import ChainLadder, chain_ladder, chain_ladder_draws, reporting_triangle
 from ._particles import ParticleSet
 from ._reports import Report, ReportingCdfTable, reporting_cdf
 from ._pmmh import (
@@ -95,6 +97,11 @@ __all__ = [
     "ParticleSet",
     "NowcastEntry",
     "nowcast",
+    "nowcast_draws",
+    "ChainLadder",
+    "chain_ladder",
+    "chain_ladder_draws",
+    "reporting_triangle",
     "Report",
     "ReportingCdfTable",
     "reporting_cdf",

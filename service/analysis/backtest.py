@@ -60,10 +60,68 @@ the service's ``raised`` alert that was active on the episode's first
 exceeding day (raised on or before it, not cleared before it, and raised after
 the previous episode ended) to that day; null if there was none.
 
+Data vintages: backtests in real time
+-------------------------------------
+A history CSV with an ``as_of`` column (``schemas.load_history``: one row per
+period and vintage, in the order the counts were learnt) is replayed as it
+was known on each date: every row becomes a message with its ``as_of``
+(none for a final row), in file order, through the same service path, so
+revisions of event-dated series are assimilated by increment and the
+service's own rules (duplicates, stale vintages, lower totals, the
+assimilation window) apply. A *forecast origin* is taken after the last row
+of each as-of date that the service applied (``as_of`` column of
+``per_origin``). Everything is scored against the **eventual counts**: each
+period's value in its last row that gives it. Of an event-dated series
+(``dated_by = "event"``) only periods whose eventual count is complete are
+targets: a final row, or a history whose last as-of date is at least the
+series' ``reporting_delay.max_days`` after the period's end (periods nearer
+the end are still being reported when the history ends). Rows need only be
+written when a count changes, so the last as-of date is taken as the day the
+history was extracted: if the last days brought no change, end the file with
+a row dated that day repeating a count (the service skips it as a duplicate). The persistence and trend baselines
+see the counts as known at the origin (partial ones included), not the
+eventual ones. Alerts are paired with the estimate published last at each
+origin, and an alert's ``raised_period`` in ``episodes`` is the as-of date
+on which it was raised.
+
+Nowcasts (runs with vintages; event-dated series). At each origin and for
+every period of the series with a partial count (its latest row known at the
+origin has an ``as_of``) and a complete eventual count, three predictive
+distributions of the eventual count are scored, ``--trajectories`` draws
+each, the same scores as forecasts, per ``periods_back`` (0 = the newest
+period of the series known at the origin, 1 the one before, ...):
+
+``casecloud``
+    :func:`filters.nowcast_draws` on the stream's cloud after the origin's
+    last record (particles picked by weight; the reports still to come drawn
+    with the series' reporting delay); its own random numbers, seeded from
+    (deployment seed, stream id, filter step), so the replay is untouched.
+``reported``
+    The count as reported so far, as if it were final (a point mass: its WIS
+    is the absolute error).
+``chain_ladder``
+    The chain-ladder nowcast (Mack 1993, :func:`filters.chain_ladder`) of the
+    reporting triangle known at the origin only (no look-ahead), lags 0 to
+    the series' ``reporting_delay.max_days``, factors volume-weighted over all
+    periods known so far; eventual count = reported + negative binomial
+    pending reports with the chain-ladder mean and Mack's mean squared error
+    as variance (Poisson when that does not exceed the mean). Origins at which
+    a factor a target needs is not estimable yet (no period has both lags
+    known) leave that target out for every method.
+
+Periods still in progress at the origin (ending after the as-of date), final
+ones and ones the stream's cloud does not hold as pending (outside its
+assimilation window) are not nowcast targets.
+
 Outputs (``--out DIR``): ``backtest.json`` (everything), ``scores.csv`` (the
 ``scores`` rows) and ``per_origin.csv`` (the ``per_origin`` rows). In the
 ROC, ``thresholds[0]`` is ``null`` in JSON: +infinity, "never alert", the
-point (0, 0). Score rows with no scorable target are left out.
+point (0, 0). Score rows with no scorable target are left out. Runs with
+vintages add ``nowcast_methods``, ``nowcast_scores`` and
+``nowcast_per_origin`` to ``backtest.json`` (and the files
+``nowcast_scores.csv`` and ``nowcast_per_origin.csv``), the ``history``
+entry gains ``vintages`` (rows), ``first_as_of`` and ``last_as_of``, and
+``per_origin`` rows gain ``as_of`` (last column).
 
 Exit status: 0 done; 2 unusable arguments, config or history; 1 nothing could
 be scored.
@@ -91,22 +149,29 @@ from filters import (
     FORECAST_LEVELS,
     auc,
     bias,
+    chain_ladder,
+    chain_ladder_draws,
     crps_from_samples,
     forecast,
     log_score_from_samples,
+    nowcast_draws,
+    reporting_triangle,
     roc_curve,
     weighted_interval_score,
 )
 
 __all__ = [
     "CAUTIONS",
+    "CAUTIONS_VINTAGES",
     "METHODS",
+    "NOWCAST_METHODS",
     "BacktestError",
     "add_backtest_parser",
     "alert_episodes",
     "origin_seed",
     "persistence_draws",
     "trend_draws",
+    "vintage_messages",
     "format_backtest_table",
     "run_backtest",
     "run_backtest_command",
@@ -114,10 +179,17 @@ __all__ = [
 ]
 
 METHODS = ("casecloud", "persistence", "trend")
+NOWCAST_METHODS = ("casecloud", "reported", "chain_ladder")
 CAUTIONS = (
     "Model-based estimates with uncertainty; decision support only; local public-health judgement and "
     "reporting rules prevail. Backtest scores describe this history only (replayed as finally reported, "
     "without the reporting delays and revisions of real time) and do not guarantee future performance."
+)
+CAUTIONS_VINTAGES = (  # runs on a history with data vintages (an as_of column)
+    "Model-based estimates with uncertainty; decision support only; local public-health judgement and "
+    "reporting rules prevail. Backtest scores describe this history only (replayed as known on each as-of "
+    "date and scored against the last vintage of each period, which later reports may still revise) and do "
+    "not guarantee future performance."
 )
 MIN_PAST = 3  # observed values of a series needed at an origin before it is scored
 TREND_DAYS = 14
@@ -126,6 +198,12 @@ _IDX = {lv: int(np.flatnonzero(np.isclose(_LEVELS, lv))[0]) for lv in (0.05, 0.2
 SCORE_KEYS = ("method", "series", "horizon", "n", "wis", "crps", "coverage_50", "coverage_90", "log_score", "bias")
 ORIGIN_KEYS = (
     "method", "series", "origin_period", "origin_day", "horizon", "target_period", "observed",
+    "median", "q05", "q25", "q75", "q95", "wis", "crps", "log_score",
+)  # fmt: skip
+VINTAGE_ORIGIN_KEYS = ORIGIN_KEYS + ("as_of",)  # per_origin rows of runs with vintages
+NOWCAST_SCORE_KEYS = ("method", "series", "periods_back", "n", "wis", "crps", "coverage_50", "coverage_90", "log_score", "bias")
+NOWCAST_ORIGIN_KEYS = (
+    "method", "series", "as_of", "origin_day", "periods_back", "target_period", "reported", "eventual",
     "median", "q05", "q25", "q75", "q95", "wis", "crps", "log_score",
 )  # fmt: skip
 
@@ -141,6 +219,9 @@ class _Origin:
     date: dt.date
     step: int
     draws: dict[str, np.ndarray]  # series -> (M, len(horizons)) reported-count draws
+    as_of: dt.date | None = None  # runs with vintages: the as-of date the origin closes
+    nowcast: dict[tuple[str, int], np.ndarray] | None = None  # (series, model day) -> (M,) eventual-count draws
+    estimate: int | None = None  # index of the estimate published last at the origin
 
 
 def _words(stream: str) -> list[int]:
@@ -204,7 +285,8 @@ def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizo
 
 
 # -------------------------------------------------------------------- replay
-def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
+def _service(config, history, stream_id: str, checkpoint_dir: Path, today: dt.date):
+    """A Service for ``stream_id`` alone on a memory transport, checkpoints in ``checkpoint_dir``."""
     from ..runtime.app import Service
     from ..state import LocalCheckpointStore
     from ..transports import MemoryTransport
@@ -218,12 +300,30 @@ def _replay(config, history, stream_id: str, horizons: list[int], trajectories: 
         }
     )
     store = LocalCheckpointStore(checkpoint_dir, keep=config.service.keep_checkpoints)
-    messages = []
     transport = MemoryTransport([])
-    today = max(history.dates) + dt.timedelta(days=1)
     service = Service(config, transport, store=store, today=lambda: today)
     model = service.registry.models[stream_id]
     series_names = [s.name for s in model.series if s.name in history.series]
+    return config, scfg, transport, service, model, series_names
+
+
+def _published(transport) -> tuple[list[dict], list[dict], list[dict]]:
+    return tuple([orjson.loads(r.value) for r in transport.published[topic]] for topic in ("estimates", "alerts", "dead_letters"))  # type: ignore[return-value]
+
+
+def _forecast_draws(config, runtime, stream_id: str, series_names, hmax: int, cols: list[int], trajectories: int):
+    pf = runtime.filter
+    fc = forecast(
+        runtime.model, pf.particles, pf.weights(), pf.time, hmax, trajectories,
+        seed=origin_seed(config.service.seed, stream_id, pf.step_count),
+    )  # fmt: skip
+    return {name: np.array(fc.reported[name][:, cols]) for name in series_names}
+
+
+def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
+    today = max(history.dates) + dt.timedelta(days=1)
+    config, scfg, transport, service, model, series_names = _service(config, history, stream_id, checkpoint_dir, today)
+    messages = []
     for period, counts in zip(history.periods, history.values):
         body = {name: counts.get(name) for name in series_names}
         messages.append(orjson.dumps({"stream": stream_id, "period": period, "counts": body}))
@@ -243,19 +343,74 @@ def _replay(config, history, stream_id: str, horizons: list[int], trajectories: 
             return
         runtime = service.registry.runtimes[stream_id]
         pf = runtime.filter
-        fc = forecast(
-            runtime.model, pf.particles, pf.weights(), pf.time, hmax, trajectories,
-            seed=origin_seed(config.service.seed, stream_id, pf.step_count),
-        )  # fmt: skip
-        draws = {name: np.array(fc.reported[name][:, cols]) for name in series_names}
+        draws = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
         date = scfg.start + dt.timedelta(days=int(runtime.last_day))
         origins.append(_Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws))
 
     service.on_outcome = hook
     counts = asyncio.run(service.run(until_exhausted=True))
-    estimates = [orjson.loads(r.value) for r in transport.published["estimates"]]
-    alerts = [orjson.loads(r.value) for r in transport.published["alerts"]]
-    dead = [orjson.loads(r.value) for r in transport.published["dead_letters"]]
+    estimates, alerts, dead = _published(transport)
+    return model, scfg, series_names, origins, estimates, alerts, dead, counts
+
+
+def vintage_messages(history, stream_id: str, series_names: list[str]) -> list[bytes]:
+    """The messages a history with vintages is replayed as: one per row, in file order, with the
+    row's ``as_of`` (none for a final row) and its counts of ``series_names`` (empty cells null)."""
+    out = []
+    for v in history.vintages:
+        body: dict[str, Any] = {"stream": stream_id, "period": v.period}
+        if v.as_of is not None:
+            body["as_of"] = v.as_of.isoformat()
+        body["counts"] = {name: v.counts.get(name) for name in series_names}
+        out.append(orjson.dumps(body))
+    return out
+
+
+def _replay_vintages(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
+    """Replay every vintage row in file order; an origin after the last row of each as-of date (if the
+    service applied any row of that date): forecast draws, nowcast draws and the latest estimate."""
+    today = max([*history.dates, *(v.known for v in history.vintages)]) + dt.timedelta(days=1)
+    config, scfg, transport, service, model, series_names = _service(config, history, stream_id, checkpoint_dir, today)
+    messages = vintage_messages(history, stream_id, series_names)
+    for value in messages:
+        transport.feed(value)
+    known = [v.known for v in history.vintages]
+    closes = [i == len(known) - 1 or known[i + 1] != known[i] for i in range(len(known))]
+    origins: list[_Origin] = []
+    hmax = max(horizons)
+    cols = [h - 1 for h in horizons]
+    handled = [0]
+    applied = [False]
+    raised: list[tuple[dt.date, dict]] = []  # (as-of date, alert) in publishing order
+
+    def hook(outcome) -> None:
+        i = handled[0]
+        handled[0] += 1
+        if progress is not None:
+            progress(handled[0], len(messages))
+        if outcome.status == "applied" and outcome.stream == stream_id:
+            applied[0] = True
+            raised.extend((known[i], orjson.loads(r.value)) for r in outcome.outputs if r.kind == "alerts")
+        if not closes[i]:
+            return
+        if not applied[0]:
+            return
+        applied[0] = False
+        runtime = service.registry.runtimes[stream_id]
+        pf = runtime.filter
+        draws = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
+        rng = np.random.default_rng(np.random.SeedSequence([int(config.service.seed), *_words(stream_id), int(pf.step_count), 99]))
+        nowcasts = nowcast_draws(runtime.model, pf.particles, pf.weights(), runtime.known, pf.time, trajectories, rng)
+        date = scfg.start + dt.timedelta(days=int(runtime.last_day))
+        origins.append(
+            _Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws,
+                    as_of=known[i], nowcast=nowcasts, estimate=len(transport.published["estimates"]) - 1)
+        )  # fmt: skip
+
+    service.on_outcome = hook
+    counts = asyncio.run(service.run(until_exhausted=True))
+    estimates, _, dead = _published(transport)
+    alerts = [{**a, "period": when.isoformat()} for when, a in raised]  # dated by the as-of date they were raised on
     return model, scfg, series_names, origins, estimates, alerts, dead, counts
 
 
@@ -334,7 +489,7 @@ def _alert_rows(history, scfg, origins: list[_Origin], estimates: list[dict], al
         vals = [v.get(rule.series) for v in history.values]
         probs, events = [], []
         for o in origins:
-            est = by_period.get(o.period)
+            est = by_period.get(o.period) if o.estimate is None else estimates[o.estimate]
             if est is None or rule.name not in (est.get("exceedance") or {}):
                 continue
             end = o.date + dt.timedelta(days=rule.horizon_days)
@@ -401,25 +556,87 @@ def run_backtest(
         raise BacktestError(f"trajectories must be at least 10, got {m}")
     if checkpoint_dir is not None and Path(checkpoint_dir).exists() and any(Path(checkpoint_dir).iterdir()):
         raise BacktestError(f"checkpoint directory {checkpoint_dir} is not empty; a backtest replays from scratch")
+    vintaged = history.vintages is not None
     with tempfile.TemporaryDirectory(prefix="casecloud-backtest-") as tmp:
         where = Path(checkpoint_dir) if checkpoint_dir is not None else Path(tmp)
-        model, scfg, series_names, origins, estimates, alerts, dead, counts = _replay(config, history, stream_id, horizons, m, where, progress)
+        replay = _replay_vintages if vintaged else _replay
+        model, scfg, series_names, origins, estimates, alerts, dead, counts = replay(config, history, stream_id, horizons, m, where, progress)
     seed = config.service.seed
+    complete = _complete(history, model, scfg.start) if vintaged else None
+    per_origin, scores = _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete)
+    alert_rows = _alert_rows(history, scfg, origins, estimates, alerts)
+    for row in alert_rows:  # kept internal: not part of the documented document
+        row.pop("n_origins"), row.pop("n_events")
+    doc: dict[str, Any] = {
+        "stream": stream_id,
+        "model": model.spec.name,
+        "history": {"first": history.periods[0], "last": history.periods[-1], "n": len(history)},
+        "horizons": horizons,
+        "methods": list(METHODS),
+        "scores": scores,
+        "per_origin": per_origin,
+        "alerts": alert_rows,
+        "cautions": CAUTIONS,
+    }
+    if vintaged:
+        as_ofs = [v.known for v in history.vintages]
+        doc["history"].update(vintages=len(history.vintages), first_as_of=min(as_ofs).isoformat(), last_as_of=max(as_ofs).isoformat())
+        nc_rows, nc_scores = _score_nowcasts(history, model, scfg.start, origins, series_names, m, seed, stream_id, complete)
+        doc.update(nowcast_methods=list(NOWCAST_METHODS), nowcast_scores=nc_scores, nowcast_per_origin=nc_rows,
+                   cautions=CAUTIONS_VINTAGES)  # fmt: skip
+    doc["_replay"] = {"counts": counts, "estimates": estimates, "alerts": alerts,
+                      "dead_letters": [d["reason"] for d in dead], "trajectories": m}  # fmt: skip
+    return doc
+
+
+def _complete(history, model, start: dt.date) -> dict[str, np.ndarray]:
+    """series -> (P,) bool: is the period's eventual count complete (see the module docstring)?
+    Report-dated series are final on arrival; an event-dated one is complete after a final row, or
+    when the history's last as-of date is at least its reporting delay's max_days after the period's end."""
+    out: dict[str, np.ndarray] = {}
+    index = {d: i for i, d in enumerate(history.dates)}
+    end_of_history = max(v.known for v in history.vintages)
+    for spec in model.spec.series:
+        if spec.name not in history.series:
+            continue
+        ok = np.array([v.get(spec.name) is not None for v in history.values])
+        if spec.dated_by == "event" and spec.reporting_delay is not None:
+            final = {index[v.date] for v in history.vintages if v.as_of is None and v.counts.get(spec.name) is not None}
+            lag = dt.timedelta(days=spec.reporting_delay.max_days)
+            ok &= np.array([i in final or history.dates[i] + lag <= end_of_history for i in range(len(history))])
+        out[spec.name] = ok
+    return out
+
+
+def _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete):
+    """per_origin rows and scores rows of the forecasts (module docstring). ``complete`` is None for a
+    history without vintages; with vintages it marks the periods whose eventual count can be a target,
+    and the baselines see the counts known at each origin's as-of date."""
     first = history.dates[0]
     per_origin: list[dict[str, Any]] = []
     acc: dict[tuple[str, str, int], dict[str, list[float]]] = {}
     date_index = {d: i for i, d in enumerate(history.dates)}
+    all_days = np.array([(d - first).days for d in history.dates], dtype=np.int64)
+    known_at: dict[dt.date, list[dict[str, int | None]]] = {}
     for si, series in enumerate(series_names):
         days, vals, _ = _realised(history, series)
         for o in origins:
             oday = (o.date - first).days
-            past = days <= oday
-            if past.sum() < MIN_PAST:
+            if complete is None:
+                past = days <= oday
+                past_days, past_vals = days[past], vals[past]
+            else:
+                if o.as_of not in known_at:
+                    known_at[o.as_of] = history.as_known(o.as_of)
+                seen = [i for i, v in enumerate(known_at[o.as_of]) if all_days[i] <= oday and v.get(series) is not None]
+                past_days = all_days[seen]
+                past_vals = np.array([known_at[o.as_of][i][series] for i in seen], dtype=np.int64)
+            if past_days.size < MIN_PAST:
                 continue
             targets, ys, hs = [], [], []
             for j, h in enumerate(horizons):
                 i = date_index.get(o.date + dt.timedelta(days=h))
-                if i is not None and history.values[i].get(series) is not None:
+                if i is not None and history.values[i].get(series) is not None and (complete is None or complete[series][i]):
                     targets.append(j)
                     ys.append(history.values[i][series])
                     hs.append(h)
@@ -428,33 +645,34 @@ def run_backtest(
             y = np.asarray(ys, dtype=float)
             draws = {
                 "casecloud": o.draws[series][:, targets],
-                "persistence": persistence_draws(days[past], vals[past], hs, m, _baseline_rng(seed, stream_id, o.step, 0, si)),
-                "trend": trend_draws(days[past], vals[past], oday, hs, m, _baseline_rng(seed, stream_id, o.step, 1, si)),
+                "persistence": persistence_draws(past_days, past_vals, hs, m, _baseline_rng(seed, stream_id, o.step, 0, si)),
+                "trend": trend_draws(past_days, past_vals, oday, hs, m, _baseline_rng(seed, stream_id, o.step, 1, si)),
             }
             for method in METHODS:
                 sc = _score_block(draws[method], y)
                 for k, h in enumerate(hs):
                     target = history.periods[date_index[o.date + dt.timedelta(days=h)]]
                     q = sc["q"][:, k]
-                    per_origin.append(
-                        {
-                            "method": method,
-                            "series": series,
-                            "origin_period": o.period,
-                            "origin_day": o.day,
-                            "horizon": h,
-                            "target_period": target,
-                            "observed": int(ys[k]),
-                            "median": _r(q[_IDX[0.5]]),
-                            "q05": _r(q[_IDX[0.05]]),
-                            "q25": _r(q[_IDX[0.25]]),
-                            "q75": _r(q[_IDX[0.75]]),
-                            "q95": _r(q[_IDX[0.95]]),
-                            "wis": _r(sc["wis"][k]),
-                            "crps": _r(sc["crps"][k]),
-                            "log_score": _r(sc["log"][k]),
-                        }
-                    )
+                    row = {
+                        "method": method,
+                        "series": series,
+                        "origin_period": o.period,
+                        "origin_day": o.day,
+                        "horizon": h,
+                        "target_period": target,
+                        "observed": int(ys[k]),
+                        "median": _r(q[_IDX[0.5]]),
+                        "q05": _r(q[_IDX[0.05]]),
+                        "q25": _r(q[_IDX[0.25]]),
+                        "q75": _r(q[_IDX[0.75]]),
+                        "q95": _r(q[_IDX[0.95]]),
+                        "wis": _r(sc["wis"][k]),
+                        "crps": _r(sc["crps"][k]),
+                        "log_score": _r(sc["log"][k]),
+                    }
+                    if complete is not None:
+                        row["as_of"] = o.as_of.isoformat()
+                    per_origin.append(row)
                     bucket = acc.setdefault((method, series, h), {k2: [] for k2 in ("wis", "crps", "cov50", "cov90", "log", "bias")})
                     for k2 in bucket:
                         bucket[k2].append(float(sc[k2][k]))
@@ -465,36 +683,95 @@ def run_backtest(
                 b = acc.get((method, series, h))
                 if not b:
                     continue
-                scores.append(
-                    {
-                        "method": method,
-                        "series": series,
-                        "horizon": h,
-                        "n": len(b["wis"]),
-                        "wis": _r(np.mean(b["wis"])),
-                        "crps": _r(np.mean(b["crps"])),
-                        "coverage_50": _r(np.mean(b["cov50"])),
-                        "coverage_90": _r(np.mean(b["cov90"])),
-                        "log_score": _r(np.mean(b["log"])),
-                        "bias": _r(np.mean(b["bias"])),
-                    }
-                )
-    alert_rows = _alert_rows(history, scfg, origins, estimates, alerts)
-    for row in alert_rows:  # kept internal: not part of the documented document
-        row.pop("n_origins"), row.pop("n_events")
+                scores.append({"method": method, "series": series, "horizon": h, **_means(b)})
+    return per_origin, scores
+
+
+def _means(b: dict[str, list[float]]) -> dict[str, Any]:
     return {
-        "stream": stream_id,
-        "model": model.spec.name,
-        "history": {"first": history.periods[0], "last": history.periods[-1], "n": len(history)},
-        "horizons": horizons,
-        "methods": list(METHODS),
-        "scores": scores,
-        "per_origin": per_origin,
-        "alerts": alert_rows,
-        "cautions": CAUTIONS,
-        "_replay": {"counts": counts, "estimates": estimates, "alerts": alerts,
-                    "dead_letters": [d["reason"] for d in dead], "trajectories": m},
-    }  # fmt: skip
+        "n": len(b["wis"]),
+        "wis": _r(np.mean(b["wis"])),
+        "crps": _r(np.mean(b["crps"])),
+        "coverage_50": _r(np.mean(b["cov50"])),
+        "coverage_90": _r(np.mean(b["cov90"])),
+        "log_score": _r(np.mean(b["log"])),
+        "bias": _r(np.mean(b["bias"])),
+    }
+
+
+def _score_nowcasts(history, model, start: dt.date, origins, series_names, m, seed, stream_id, complete):
+    """nowcast_per_origin and nowcast_scores rows (module docstring, "Nowcasts")."""
+    rows: list[dict[str, Any]] = []
+    acc: dict[tuple[str, str, int], dict[str, list[float]]] = {}
+    ends = np.array([(d - start).days for d in history.dates], dtype=np.int64)
+    index = {d: i for i, d in enumerate(history.dates)}
+    event = [sp for sp in model.spec.series if sp.name in series_names and sp.dated_by == "event" and sp.reporting_delay is not None]
+    for spec in event:
+        si = series_names.index(spec.name)
+        given = [v for v in history.vintages if v.counts.get(spec.name) is not None]  # in known-date order
+        vp = np.array([index[v.date] for v in given], dtype=np.intp)
+        va = np.array([(v.known - start).days for v in given], dtype=np.int64)
+        vv = np.array([v.counts[spec.name] for v in given], dtype=float)
+        final = np.array([v.as_of is None for v in given], dtype=bool)
+        for o in origins:
+            a = (o.as_of - start).days
+            seen = va <= a
+            # latest row known at the origin, per period (rows are in known-date order)
+            latest: dict[int, int] = {int(p): j for j, p in zip(np.flatnonzero(seen), vp[seen])}
+            newest_first = sorted((p for p in latest if ends[p] <= a), key=lambda p: -ends[p])
+            fit = chain_ladder(reporting_triangle(ends, vp, va, vv, a, spec.reporting_delay.max_days))
+            targets, back = [], []
+            for k, p in enumerate(newest_first):
+                j = latest[p]
+                if final[j] or not complete[spec.name][p] or (spec.name, int(ends[p])) not in o.nowcast:
+                    continue
+                if not (np.isfinite(fit.ultimate[p]) and np.isfinite(fit.mse[p])):
+                    continue
+                targets.append(p)
+                back.append(k)
+            if not targets:
+                continue
+            tp = np.array(targets, dtype=np.intp)
+            y = np.array([history.values[p][spec.name] for p in targets], dtype=float)
+            reported = vv[[latest[p] for p in targets]]
+            draws = {
+                "casecloud": np.stack([o.nowcast[(spec.name, int(ends[p]))] for p in targets], axis=1),
+                "reported": np.broadcast_to(reported, (m, len(targets))),
+                "chain_ladder": chain_ladder_draws(fit, tp, m, _baseline_rng(seed, stream_id, o.step, 2, si)),
+            }
+            for method in NOWCAST_METHODS:
+                sc = _score_block(draws[method], y)
+                for k, p in enumerate(targets):
+                    q = sc["q"][:, k]
+                    rows.append(
+                        {
+                            "method": method,
+                            "series": spec.name,
+                            "as_of": o.as_of.isoformat(),
+                            "origin_day": a,
+                            "periods_back": back[k],
+                            "target_period": history.periods[p],
+                            "reported": int(reported[k]),
+                            "eventual": int(y[k]),
+                            "median": _r(q[_IDX[0.5]]),
+                            "q05": _r(q[_IDX[0.05]]),
+                            "q25": _r(q[_IDX[0.25]]),
+                            "q75": _r(q[_IDX[0.75]]),
+                            "q95": _r(q[_IDX[0.95]]),
+                            "wis": _r(sc["wis"][k]),
+                            "crps": _r(sc["crps"][k]),
+                            "log_score": _r(sc["log"][k]),
+                        }
+                    )
+                    bucket = acc.setdefault((method, spec.name, back[k]), {k2: [] for k2 in ("wis", "crps", "cov50", "cov90", "log", "bias")})
+                    for k2 in bucket:
+                        bucket[k2].append(float(sc[k2][k]))
+    scores = []
+    for method in NOWCAST_METHODS:
+        for spec in event:
+            for back in sorted(k for (mm, name, k) in acc if mm == method and name == spec.name):
+                scores.append({"method": method, "series": spec.name, "periods_back": back, **_means(acc[(method, spec.name, back)])})
+    return rows, scores
 
 
 # ------------------------------------------------------------------- outputs
@@ -507,13 +784,19 @@ def _csv(path: Path, keys: tuple[str, ...], rows: list[dict[str, Any]]) -> None:
 
 
 def write_backtest_outputs(result: dict[str, Any], out: Path) -> list[Path]:
-    """Write backtest.json, scores.csv and per_origin.csv into ``out``."""
+    """Write backtest.json, scores.csv and per_origin.csv into ``out`` (runs with vintages: also
+    nowcast_scores.csv and nowcast_per_origin.csv)."""
     out.mkdir(parents=True, exist_ok=True)
     doc = {k: v for k, v in result.items() if not k.startswith("_")}
+    vintaged = "nowcast_scores" in doc
     paths = [out / "backtest.json", out / "scores.csv", out / "per_origin.csv"]
     paths[0].write_bytes(orjson.dumps(doc, option=orjson.OPT_INDENT_2) + b"\n")
     _csv(paths[1], SCORE_KEYS, doc["scores"])
-    _csv(paths[2], ORIGIN_KEYS, doc["per_origin"])
+    _csv(paths[2], VINTAGE_ORIGIN_KEYS if vintaged else ORIGIN_KEYS, doc["per_origin"])
+    if vintaged:
+        paths += [out / "nowcast_scores.csv", out / "nowcast_per_origin.csv"]
+        _csv(paths[3], NOWCAST_SCORE_KEYS, doc["nowcast_scores"])
+        _csv(paths[4], NOWCAST_ORIGIN_KEYS, doc["nowcast_per_origin"])
     return paths
 
 
@@ -536,6 +819,16 @@ def format_backtest_table(result: dict[str, Any]) -> str:
             if r["series"] == s:
                 lines.append(
                     f"{r['method']:<12}{r['horizon']:>8}{r['n']:>6}{_f(r['wis']):>10}{_f(r['crps']):>10}"
+                    f"{_f(r['coverage_50']):>8}{_f(r['coverage_90']):>8}"
+                )
+    nowcast_series = sorted({r["series"] for r in result.get("nowcast_scores", [])})
+    for s in nowcast_series:
+        lines += ["", f"nowcast {s}: eventual counts by periods back (0 = latest; lower WIS/CRPS is better; nominal coverage 0.50 / 0.90)"]
+        lines.append(f"{'method':<14}{'back':>6}{'n':>6}{'WIS':>10}{'CRPS':>10}{'cov50':>8}{'cov90':>8}")
+        for r in result["nowcast_scores"]:
+            if r["series"] == s:
+                lines.append(
+                    f"{r['method']:<14}{r['periods_back']:>6}{r['n']:>6}{_f(r['wis']):>10}{_f(r['crps']):>10}"
                     f"{_f(r['coverage_50']):>8}{_f(r['coverage_90']):>8}"
                 )
     for a in result["alerts"]:
@@ -565,11 +858,14 @@ def _horizons(text: str) -> list[int]:
 def add_backtest_parser(sub) -> None:
     p = sub.add_parser("backtest", help="replay a history through the service and score its forecasts and alerts")
     p.add_argument("--config", required=True, help="deployment config TOML")
-    p.add_argument("--history", required=True, help="CSV: period,<series...> (empty cell = not reported)")
+    p.add_argument("--history", required=True,
+                   help="CSV: period,<series...> (empty cell = not reported); with data vintages "
+                        "period,as_of,<series...>, replayed as known on each as-of date")  # fmt: skip
     p.add_argument("--stream", required=True, help="stream id in the config")
     p.add_argument("--horizons", type=_horizons, default=[1, 7, 14], help="days ahead to score (default 1,7,14)")
     p.add_argument("--trajectories", type=int, help="draws per forecast (default: the stream's forecast_trajectories)")
-    p.add_argument("--out", help="directory for backtest.json, scores.csv and per_origin.csv")
+    p.add_argument("--out", help="directory for backtest.json, scores.csv and per_origin.csv "
+                                 "(with vintages also nowcast_scores.csv and nowcast_per_origin.csv)")
     p.set_defaults(handler=run_backtest_command)
 
 
@@ -586,7 +882,8 @@ def run_backtest_command(args: argparse.Namespace) -> int:
     try:
         config = load_deployment_config(args.config)
         history = load_history(args.history)
-        with Progress("backtest", len(history), "history rows") as shown:
+        rows = len(history.vintages) if history.vintages is not None else len(history)
+        with Progress("backtest", rows, "history rows") as shown:
             result = run_backtest(config, history, args.stream, args.horizons, args.trajectories,
                                   progress=lambda done, total: shown.update(done, total))
     except (SpecError, BacktestError) as exc:
@@ -600,6 +897,6 @@ def run_backtest_command(args: argparse.Namespace) -> int:
         for path in write_backtest_outputs(result, Path(args.out)):
             print(path, file=sys.stderr)
     print(format_backtest_table(result))
-    if not result["scores"]:
+    if not result["scores"] and not result.get("nowcast_scores"):
         return fail("nothing could be scored (no origin had an observed target at the requested horizons)", 1)
     return 0

@@ -119,7 +119,9 @@ def add_calibrate_parser(sub: Any) -> None:
         "history CSV (header period,<series>...). Resumable: run again with the same --out to continue.",
     )
     p.add_argument("--model", required=True, help="model spec TOML, or a shipped example name (sir, seir, ...)")
-    p.add_argument("--history", required=True, help="CSV: period,<series1>,... (dates or ISO weeks; empty = missing)")
+    p.add_argument("--history", required=True,
+                   help="CSV: period,<series1>,... (dates or ISO weeks; empty = missing); with data vintages "
+                        "(period,as_of,<series1>,...) the last vintage of each period is read as its final count")  # fmt: skip
     p.add_argument("--start", required=True, help="calendar date of model day 0 (YYYY-MM-DD), before the first period")
     p.add_argument("--particles", type=int, default=500, help="particles per likelihood estimate (default 500)")
     p.add_argument("--iterations", type=int, default=2000, help="iterations per chain incl. burn-in (default 2000)")
