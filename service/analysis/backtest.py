@@ -192,6 +192,7 @@ CAUTIONS_VINTAGES = (  # runs on a history with data vintages (an as_of column)
     "not guarantee future performance."
 )
 MIN_PAST = 3  # observed values of a series needed at an origin before it is scored
+_NOWCAST_KEY = 99  # last word of the nowcast draws' seed (deployment seed, stream words, step, this)
 TREND_DAYS = 14
 _LEVELS = np.asarray(FORECAST_LEVELS)
 _IDX = {lv: int(np.flatnonzero(np.isclose(_LEVELS, lv))[0]) for lv in (0.05, 0.25, 0.5, 0.75, 0.95)}
@@ -399,7 +400,7 @@ def _replay_vintages(config, history, stream_id: str, horizons: list[int], traje
         runtime = service.registry.runtimes[stream_id]
         pf = runtime.filter
         draws = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
-        rng = np.random.default_rng(np.random.SeedSequence([int(config.service.seed), *_words(stream_id), int(pf.step_count), 99]))
+        rng = np.random.default_rng(np.random.SeedSequence([int(config.service.seed), *_words(stream_id), int(pf.step_count), _NOWCAST_KEY]))
         nowcasts = nowcast_draws(runtime.model, pf.particles, pf.weights(), runtime.known, pf.time, trajectories, rng)
         date = scfg.start + dt.timedelta(days=int(runtime.last_day))
         origins.append(

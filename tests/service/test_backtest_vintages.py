@@ -325,13 +325,16 @@ def test_without_the_as_of_column_nothing_changes(tmp_path):
     The old path's output was also compared byte for byte with the code before vintages existed when
     this was written (a SHA-256 of backtest.json + estimates on a 40-day sir history: equal).
     Bugs caught: origins taken per as-of group where the old path took one per applied row, baselines
-    fed eventual instead of known counts (equal here, so a difference means the paths diverged)."""
+    fed eventual instead of known counts (equal here, so a difference means the paths diverged), alerts
+    paired with another estimate than the one published at the origin, or dated otherwise."""
     plain_path, final_path = _sir_history(tmp_path)
     config_path = tmp_path / "deploy.toml"
     config_path.write_text(
         f'transport = "file"\n[service]\nseed = 4\ncheckpoint_dir = "x"\n[metrics]\nenabled = false\n'
         f'[[streams]]\nid = "{STREAM}"\nmodel = "sir"\nstart = "{START.isoformat()}"\nparticles = 200\n'
         f"forecast_trajectories = 100\nforecast_horizon_days = 7\n"
+        f'[[streams.alerts]]\nname = "cases_high"\nseries = "cases"\nthreshold = 60\nhorizon_days = 7\n'
+        f"raise_level = 0.7\nclear_level = 0.4\n"
     )
     config = load_deployment_config(config_path)
     plain, final = load_history(plain_path), load_history(final_path)
@@ -345,6 +348,9 @@ def test_without_the_as_of_column_nothing_changes(tmp_path):
     assert old["history"] == {"first": _date(1), "last": _date(30), "n": 30}
     assert old["_replay"]["estimates"] == new["_replay"]["estimates"]
     assert old["scores"] == new["scores"] and old["alerts"] == new["alerts"]
+    # the alert rows are not vacuous: an episode, and an AUC from both outcomes
+    (alert,) = old["alerts"]
+    assert alert["episodes"] and alert["auc"] is not None
     assert old["per_origin"] == [{k: r[k] for k in ORIGIN_KEYS} for r in new["per_origin"]]
     assert new["nowcast_scores"] == [] and new["cautions"] == CAUTIONS_VINTAGES
 
