@@ -29,6 +29,7 @@ def build_parser() -> argparse.ArgumentParser:
     from .analysis.scenario import add_scenario_parser
     from .bench.command import add_bench_parser
     from .runtime.commands import add_runtime_parsers, add_schemas_parser
+    from .runtime.recovery import add_stream_parser
     from .state.commands import add_checkpoint_parser
 
     parser = argparse.ArgumentParser(
@@ -40,6 +41,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_demo_parser(sub)
     add_runtime_parsers(sub)
     add_checkpoint_parser(sub)
+    add_stream_parser(sub)
     add_schemas_parser(sub)
     add_scenario_parser(sub)
     add_calibrate_parser(sub)

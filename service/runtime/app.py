@@ -44,13 +44,22 @@ class Service:
         self.store = store if store is not None else build_checkpoint_store(config)
         self.metrics = metrics or Metrics()
         self.registry = StreamRegistry(config, self.store)
-        self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today)
+        self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today, earlier=transport.earlier)
         self.on_outcome = on_outcome
         self.pipeline = pipeline
         self.ready = False
         self.http: HealthServer | None = None
         self.counts = {"applied": 0, "skipped": 0, "dead_letter": 0}
         self._pending: tuple[Record, asyncio.Future] | None = None
+
+    def readiness(self) -> tuple[bool, str]:
+        """Ready when connected and no stream is held for lost state (the reason when not)."""
+        if not self.ready:
+            return False, "not ready: starting or stopping"
+        held = self.registry.held()
+        if held:
+            return False, f"not ready: streams held for lost state: {', '.join(held)}"
+        return True, "ready"
 
     async def _on_assign(self, assigned: Sequence[tuple[str, int]]):
         resume = await asyncio.to_thread(self.registry.resume_offsets, list(assigned))
@@ -62,6 +71,8 @@ class Service:
         for stream, _ in self.registry.fallbacks:
             self.metrics.checkpoint_fallbacks.labels(stream).inc()
         self.registry.fallbacks.clear()
+        for stream, key in self.registry.config_drift:
+            self.metrics.config_ignored.labels(stream, "particles" if key == "n_particles" else key).set(1)
 
     async def _publish(self, records: list[OutRecord]) -> None:
         if records:
@@ -89,7 +100,7 @@ class Service:
         stop = stop or asyncio.Event()
         m = self.config.metrics
         if m.enabled:
-            self.http = HealthServer(self.metrics.registry, lambda: self.ready, m.host, m.port)
+            self.http = HealthServer(self.metrics.registry, self.readiness, m.host, m.port)
             await self.http.start()
             log.info("metrics on http://%s:%s/metrics", m.host, self.http.port)
         self.metrics.watch_lag(self.transport.lag)

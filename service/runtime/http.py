@@ -12,9 +12,10 @@ __all__ = ["HealthServer"]
 
 class HealthServer:
     """``/healthz``: the event loop answers. ``/readyz``: ``ready()`` is true
-    (transport connected, streams loaded). ``/metrics``: Prometheus text."""
+    (transport connected, streams loaded, none held); ``ready()`` may return
+    ``(ok, reason)`` to say why in the body. ``/metrics``: Prometheus text."""
 
-    def __init__(self, registry: CollectorRegistry, ready: Callable[[], bool], host: str, port: int) -> None:
+    def __init__(self, registry: CollectorRegistry, ready: Callable[[], bool | tuple[bool, str]], host: str, port: int) -> None:
         self.registry, self.ready, self.host, self.port = registry, ready, host, port
         self._server: asyncio.base_events.Server | None = None
 
@@ -43,9 +44,10 @@ class HealthServer:
             elif path == "/healthz":
                 status, ctype, body = "200 OK", "text/plain", b"ok\n"
             elif path == "/readyz":
-                ok = self.ready()
+                answer = self.ready()
+                ok, reason = answer if isinstance(answer, tuple) else (answer, "ready" if answer else "not ready")
                 status = "200 OK" if ok else "503 Service Unavailable"
-                ctype, body = "text/plain", b"ready\n" if ok else b"not ready\n"
+                ctype, body = "text/plain", reason.encode() + b"\n"
             else:
                 status, ctype, body = "404 Not Found", "text/plain", b"not found\n"
             head = f"HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {len(body)}\r\nConnection: close\r\n\r\n"

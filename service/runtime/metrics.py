@@ -68,6 +68,15 @@ class Metrics:
         self.distinct_paths_ratio = Gauge(
             "casecloud_distinct_paths_ratio", "Distinct ancestors at the oldest day of the window divided by particle count", ["stream"], registry=r
         )
+        self.needs_recovery = Gauge(
+            "casecloud_stream_needs_recovery", "1 while a stream that lost its state is held for an operator", ["stream"], registry=r
+        )
+        self.config_ignored = Gauge(
+            "casecloud_stream_config_ignored",
+            "1 where a filter setting in the config differs from the stream's checkpoint (the checkpoint's is used)",
+            ["stream", "key"],
+            registry=r,
+        )
         self.late_values = Counter("casecloud_late_values", "Series values assimilated for a past period (inside the window)", ["stream"], registry=r)
         self.revisions = Counter("casecloud_revisions", "Revised totals whose increment was assimilated", ["stream"], registry=r)
         self.alerts = Counter("casecloud_alert_events", "Alert messages published", ["stream", "rule", "status"], registry=r)

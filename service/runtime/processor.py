@@ -13,7 +13,7 @@ import json
 import logging
 import time
 import uuid
-from collections.abc import Callable
+from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -138,8 +138,14 @@ class RecordProcessor:
         store: CheckpointStore,
         metrics: Metrics,
         today: Callable[[], dt.date] = dt.date.today,
+        earlier: Callable[[str, int, int], AsyncIterator[Record]] | None = None,
     ) -> None:
+        """``earlier(topic, partition, before)`` reads a partition's older input records
+        again (the transport's :meth:`~service.transports.base.Transport.earlier`); it is
+        how a stream without a checkpoint is told apart from a stream whose state was lost.
+        Without it that check is skipped."""
         self.config, self.registry, self.store, self.metrics, self.today = config, registry, store, metrics, today
+        self.earlier = earlier
 
     # ------------------------------------------------------------------ entry
     async def handle(
@@ -153,6 +159,8 @@ class RecordProcessor:
         """
         try:
             message, runtime = self._validate(record)
+            if runtime.fresh or runtime.held is not None:
+                runtime = await self._guard_lost_state(runtime, record)
         except _Reject as rej:
             return await self._dead_letter(record, rej, publish)
         key = f"{record.topic}|{record.partition}"
@@ -180,6 +188,60 @@ class RecordProcessor:
             return Outcome("applied", None, runtime.id, outputs, checkpoint)
         await self.write_checkpoint(checkpoint)
         return Outcome("applied", None, runtime.id, outputs)
+
+    async def _guard_lost_state(self, runtime: StreamRuntime, record: Record) -> StreamRuntime:
+        """Never start a stream from its prior when it was advanced before and lost its state.
+
+        A stream without a checkpoint is new only if no valid observation of it was
+        consumed before this record on the same partition. Otherwise it is held: its
+        records become dead letters ``needs_recovery`` (bytes kept; a rebuild from the
+        input applies them) until an operator rebuilds or resets it, which the
+        service notices at the stream's next record.
+        """
+        sid = runtime.id
+        if runtime.held is not None:
+            reloaded = await asyncio.to_thread(self.registry.reload, sid)
+            if reloaded is None:
+                raise _Reject("needs_recovery", f"stream {sid!r} is held: {runtime.held}", sid)
+            self.metrics.needs_recovery.labels(sid).set(0)
+            log.warning("stream %s: a checkpoint appeared (step %s); its records are applied again", sid, reloaded.filter.step_count)
+            return reloaded
+        evidence = await self._earlier_observation(sid, record) if self.earlier is not None else None
+        if evidence is None:
+            runtime.fresh = False
+            return runtime
+        runtime.held = (
+            f"its observation at {evidence.topic}[{evidence.partition}] offset {evidence.offset} was consumed before, "
+            "but the stream has no checkpoint: its state was lost. Rebuild it from its history "
+            "(casecloud stream rebuild) or start it from the prior on purpose (casecloud stream reset); "
+            "see the runbook, CasecloudStreamNeedsRecovery"
+        )
+        self.metrics.needs_recovery.labels(sid).set(1)
+        log.error("stream %s held: %s", sid, runtime.held)
+        raise _Reject("needs_recovery", f"stream {sid!r} is held: {runtime.held}", sid)
+
+    async def _earlier_observation(self, sid: str, record: Record) -> Record | None:
+        """The first valid observation of stream ``sid`` before ``record`` on its partition, if any."""
+        assert self.earlier is not None
+        key = sid.encode()
+        try:
+            async for old in self.earlier(record.topic, record.partition, record.offset):
+                if old.key is not None and old.key != key:
+                    continue
+                try:
+                    raw = orjson.loads(old.value)
+                except orjson.JSONDecodeError:
+                    continue
+                if not (isinstance(raw, dict) and raw.get("stream") == sid):
+                    continue
+                try:
+                    ObservationMessage.model_validate(raw)
+                except ValidationError:
+                    continue
+                return old
+        except NotImplementedError as exc:
+            log.warning("stream %s has no checkpoint and its input cannot be read again (%s): taken as new", sid, exc)
+        return None
 
     async def write_checkpoint(self, checkpoint: Checkpoint) -> CheckpointInfo:
         """Write in a worker thread; count failures and re-raise them (the offset must then not be committed)."""

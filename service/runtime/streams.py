@@ -49,6 +49,11 @@ class StreamRuntime:
     known: dict[str, dict[int, tuple[float, int | None]]] = field(default_factory=dict)
     alerts: dict[str, AlertState] = field(default_factory=dict)
     saved_at: float | None = None  # when the checkpoint it was restored from was written (file time)
+    # Lost-state guard: ``fresh`` until the first record shows whether the stream is new;
+    # ``held`` says why its records are not applied (it was advanced before but has no checkpoint).
+    fresh: bool = False
+    held: str | None = None
+    operations: list[dict] = field(default_factory=list)  # operator actions (rebuild, reset), oldest first
 
     @property
     def id(self) -> str:
@@ -69,6 +74,7 @@ class StreamRuntime:
                 "last_period": self.last_period,
                 "positions": dict(self.positions),
                 "alerts": {k: v.to_json() for k, v in self.alerts.items()},
+                **({"operations": list(self.operations)} if self.operations else {}),
                 "known": {
                     series: {str(day): [total, as_of] for day, (total, as_of) in sorted(days.items())}
                     for series, days in sorted(self.known.items())
@@ -109,6 +115,7 @@ class StreamRegistry:
                     )
         self.runtimes: dict[str, StreamRuntime] = {}
         self.fallbacks: list[tuple[str, list[tuple[str, str]]]] = []  # not yet counted in metrics
+        self.config_drift: dict[tuple[str, str], tuple[object, object]] = {}  # (stream, key) -> (checkpoint, config)
         self._reported: set[tuple[str, str]] = set()
 
     def get(self, stream_id: str) -> StreamRuntime | None:
@@ -131,9 +138,7 @@ class StreamRegistry:
         s, model = self.streams[stream_id], self.models[stream_id]
         loaded = self.store.load_latest(stream_id, expected_fingerprint=model.fingerprint())
         if loaded is None:
-            rng = stream_generator(self.config.service.seed, stream_id)
-            pf = ParticleFilter(model, self._filter_config(s), rng, time=0)
-            return StreamRuntime(s, model, pf)
+            return self.from_prior(stream_id, fresh=True)
         fresh = [(p, r) for p, r in loaded.skipped if (stream_id, str(p)) not in self._reported]
         if fresh:
             self._reported.update((stream_id, str(p)) for p, _ in fresh)
@@ -141,6 +146,7 @@ class StreamRegistry:
             self.fallbacks.append((stream_id, [(str(p), r) for p, r in fresh]))
         cp = loaded.checkpoint
         pf = ParticleFilter.from_state(model, cp.header["filter"], {k: np.asarray(v) for k, v in cp.arrays.items()})
+        self._report_config_drift(stream_id, pf.config)
         return StreamRuntime(
             s,
             model,
@@ -149,12 +155,48 @@ class StreamRegistry:
             last_period=cp.header.get("last_period"),
             positions={k: int(v) for k, v in cp.header.get("positions", {}).items()},
             alerts={k: AlertState.from_json(v) for k, v in cp.header.get("alerts", {}).items()},
+            operations=list(cp.header.get("operations", [])),
             known={
                 series: {int(day): (float(total), None if as_of is None else int(as_of)) for day, (total, as_of) in days.items()}
                 for series, days in cp.header.get("known", {}).items()
             },
             saved_at=_file_time(loaded.path),
         )
+
+    def from_prior(self, stream_id: str, fresh: bool = False) -> StreamRuntime:
+        """A new cloud drawn from the stream's prior, seeded from (deployment seed, stream id)."""
+        s, model = self.streams[stream_id], self.models[stream_id]
+        rng = stream_generator(self.config.service.seed, stream_id)
+        pf = ParticleFilter(model, self._filter_config(s), rng, time=0)
+        return StreamRuntime(s, model, pf, fresh=fresh)
+
+    def reload(self, stream_id: str) -> StreamRuntime | None:
+        """The stream from its newest checkpoint if it has one now (after a rebuild or a
+        reset by an operator), replacing the runtime in memory; None if it still has none."""
+        runtime = self._load_or_create(stream_id)
+        if runtime.fresh:
+            return None
+        self.runtimes[stream_id] = runtime
+        return runtime
+
+    def held(self) -> list[str]:
+        """Streams whose records are held back until an operator restores their state."""
+        return sorted(sid for sid, r in self.runtimes.items() if r.held is not None)
+
+    def _report_config_drift(self, stream_id: str, saved: FilterConfig) -> None:
+        """Filter settings in the config that differ from the checkpoint's: the checkpoint's
+        are used (they shaped the cloud); each difference is logged once and kept in
+        :attr:`config_drift` for the metrics."""
+        wanted = self._filter_config(self.streams[stream_id])
+        for key in ("n_particles", "resample_threshold", "scheme", "liu_west_discount"):
+            have, want = getattr(saved, key), getattr(wanted, key)
+            if have != want and (stream_id, key) not in self.config_drift:
+                self.config_drift[(stream_id, key)] = (have, want)
+                name = "particles" if key == "n_particles" else key
+                log.warning(
+                    "stream %s: config sets %s = %r but its checkpoint holds %r; the checkpoint's value is used "
+                    "(a reset or rebuild applies the new one)", stream_id, name, want, have,
+                )
 
     def preload(self) -> None:
         """Load (or create) every configured stream now; raises on unusable checkpoints."""

@@ -8,7 +8,7 @@ replays and tests. Only ``kafka.py`` imports aiokafka.
 
 from __future__ import annotations
 
-from collections.abc import Awaitable, Callable, Mapping, Sequence
+from collections.abc import AsyncIterator, Awaitable, Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -80,6 +80,17 @@ class Transport:
     def lag(self) -> dict[tuple[str, int], int]:
         """Records waiting per (topic, partition), where the transport knows it."""
         return {}
+
+    def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+        """The input records of a partition with offsets below ``before``, oldest
+        first, as far back as the source still holds them. Raises
+        NotImplementedError where the source cannot be read again (stdin)."""
+        raise NotImplementedError(f"{type(self).__name__} cannot read its input again")
+
+    async def input_ends(self) -> dict[tuple[str, int], int]:
+        """For every input partition, the offset the next new record will get
+        (without starting the transport). Raises NotImplementedError where unknown."""
+        raise NotImplementedError(f"{type(self).__name__} cannot tell where its input ends")
 
     async def __aenter__(self) -> "Transport":
         await self.start()

@@ -1,6 +1,8 @@
 """Newline-delimited JSON files (or stdin/stdout): the embedded default.
 
-Input: one observation per line; a record's offset is its 0-based line number.
+Input: one observation per line; a record's offset is its 0-based line number and
+its topic the input file's name (so saved positions do not depend on the
+directory the service runs from).
 Output: ``estimates.ndjson``, ``alerts.ndjson`` and ``dead_letters.ndjson``
 in an output directory (one JSON value per line, flushed and fsynced before
 ``publish`` returns), or all to stdout. Commits go to ``committed.json`` in the
@@ -12,7 +14,7 @@ from __future__ import annotations
 import asyncio
 import os
 import sys
-from collections.abc import Sequence
+from collections.abc import AsyncIterator, Sequence
 from pathlib import Path
 from typing import BinaryIO
 
@@ -30,7 +32,9 @@ class FileTransport(Transport):
     def __init__(self, input_path: Path | None, output_dir: Path | None, topic: str | None = None) -> None:
         self.input_path = input_path
         self.output_dir = output_dir
-        self.topic = topic or (str(input_path) if input_path else "stdin")
+        # The file's name, not its path: positions then survive running from another
+        # directory or moving the deployment's folder.
+        self.topic = topic or (Path(input_path).name if input_path else "stdin")
         self._in: BinaryIO | None = None
         self._out: dict[str, BinaryIO] = {}
         self._next_offset = 0
@@ -98,6 +102,29 @@ class FileTransport(Transport):
     @property
     def exhausted(self) -> bool:
         return self._eof
+
+    async def input_ends(self) -> dict[tuple[str, int], int]:
+        if self.input_path is None:
+            raise NotImplementedError("standard input has no end to look up")
+        try:
+            with open(self.input_path, "rb") as f:
+                return {(self.topic, 0): sum(1 for _ in f)}
+        except OSError as exc:
+            raise TransportError(f"cannot read input {self.input_path}: {exc.strerror}", topic=self.topic) from None
+
+    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+        if self.input_path is None:
+            raise NotImplementedError("standard input cannot be read again")
+        if (topic, partition) != (self.topic, 0):
+            return
+        try:
+            with open(self.input_path, "rb") as f:
+                for offset, line in enumerate(f):
+                    if offset >= before:
+                        break
+                    yield Record(value=line.rstrip(b"\r\n"), topic=self.topic, partition=0, offset=offset)
+        except OSError as exc:
+            raise TransportError(f"cannot read input {self.input_path} again: {exc.strerror}", topic=self.topic) from None
 
     async def publish(self, records: Sequence[OutRecord]) -> None:
         touched = set()

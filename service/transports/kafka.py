@@ -13,7 +13,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import ssl
-from collections.abc import Sequence
+from collections.abc import AsyncIterator, Sequence
 from typing import Any
 
 from aiokafka import AIOKafkaConsumer, AIOKafkaProducer, ConsumerRebalanceListener, TopicPartition
@@ -298,3 +298,57 @@ class KafkaTransport(Transport):
             if high is not None:
                 out[(tp.topic, tp.partition)] = max(0, high - self._positions.get((tp.topic, tp.partition), high))
         return out
+
+    async def input_ends(self) -> dict[tuple[str, int], int]:
+        """End offsets of every partition of the input topic (a short-lived consumer, no group)."""
+        s = self.settings
+        reader = AIOKafkaConsumer(bootstrap_servers=s.bootstrap_servers, client_id=f"{s.client_id}-ends", group_id=None, **self._security())
+        try:
+            await reader.start()
+            partitions = await reader.partitions_for_topic(s.input_topic) or set()
+            tps = [TopicPartition(s.input_topic, p) for p in sorted(partitions)]
+            ends = await reader.end_offsets(tps) if tps else {}
+            return {(tp.topic, tp.partition): int(offset) for tp, offset in ends.items()}
+        except Exception as exc:
+            raise translate_error(exc, f"look up the end of {s.input_topic}", s.input_topic) from exc
+        finally:
+            await stop_quietly(reader, what="end-offset reader")
+
+    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+        """Read the partition from its earliest retained offset up to ``before`` with a
+        consumer of its own (no group, nothing committed)."""
+        s = self.settings
+        tp = TopicPartition(topic, partition)
+        reader = AIOKafkaConsumer(
+            bootstrap_servers=s.bootstrap_servers,
+            client_id=f"{s.client_id}-history",
+            group_id=None,
+            enable_auto_commit=False,
+            max_partition_fetch_bytes=max(self.max_message_bytes * 2, 1_048_576),
+            **self._security(),
+        )
+        try:
+            await reader.start()
+            reader.assign([tp])
+            await reader.seek_to_beginning(tp)
+            end = min(before, (await reader.end_offsets([tp]))[tp])
+            while await reader.position(tp) < end:
+                batch = await reader.getmany(tp, timeout_ms=1000, max_records=500)
+                for m in batch.get(tp, []):
+                    if m.offset >= end:
+                        return
+                    yield Record(
+                        value=m.value or b"",
+                        key=m.key,
+                        headers=tuple((k, v or b"") for k, v in (m.headers or ())),
+                        topic=m.topic,
+                        partition=m.partition,
+                        offset=m.offset,
+                    )
+        except TransportError:
+            raise
+        except Exception as exc:
+            raise translate_error(exc, f"read {topic}[{partition}] from its beginning", topic) from exc
+        finally:
+            await stop_quietly(reader, what="history reader")
+

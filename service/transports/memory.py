@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Sequence
+from collections.abc import AsyncIterator, Sequence
 
 from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
@@ -69,3 +69,11 @@ class MemoryTransport(Transport):
 
     def lag(self) -> dict[tuple[str, int], int]:
         return {(self.topic, 0): len(self.inputs) - self.position}
+
+    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+        for record in list(self.inputs):
+            if (record.topic, record.partition) == (topic, partition) and record.offset < before:
+                yield record
+
+    async def input_ends(self) -> dict[tuple[str, int], int]:
+        return {(self.topic, 0): len(self.inputs)}

@@ -392,7 +392,7 @@ def test_failover_restores_streams_from_kafka_bit_identically(kafka_broker, tmp_
     assert cli_main(["checkpoint", "verify", "--config", str(config["b"])]) == 0
     lines = capsys.readouterr().out.splitlines()
     assert len(lines) == 3 * len(STREAMS) and all(line.endswith("\tok") for line in lines)
-    assert cli_main(["checkpoint", "show", "--config", str(config["a"]), "--stream", "ward-c"]) == 0
+    assert cli_main(["checkpoint", "show", "--config", str(config["a"]), "--stream", "ward-c", "--json"]) == 0
     shown = orjson.loads(capsys.readouterr().out)
     assert shown["ok"] and shown["step"] == DAYS and shown["path"] == f"kafka:{ckpt_topic}/ward-c/{DAYS:012d}"
     with capsys.disabled():

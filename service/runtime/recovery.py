@@ -1,0 +1,305 @@
+"""Operator commands for a stream's saved state: ``casecloud stream rebuild|reset``.
+
+A stream that was advanced before but has no checkpoint is held by the
+service (its records become dead letters ``needs_recovery``). An operator then
+either **rebuilds** its cloud offline from the retained history, or **resets**
+it to start from the prior on purpose. Both write a checkpoint through the
+deployment's own checkpoint store; the running service notices it at the
+stream's next record and goes on from there without replaying anything itself.
+
+``rebuild`` reads the stream's records from the input (the input file, or every
+partition of the input topic from its beginning) and runs them through the same
+record processor the service uses, so the cloud, its random numbers and its
+input positions are exactly what an uninterrupted service would hold; records
+the service held back are applied too, since they are still in the input. With
+``--history CSV`` it replays a history file instead (no input positions: the
+service then skips the periods the file covered as duplicates, or refuses them
+as late). ``reset`` archives the stream's checkpoints (moved or copied, never
+deleted) and writes a checkpoint drawn from the prior whose input positions are
+the current end of the input, so only records that arrive afterwards feed it.
+Every action is logged in the checkpoint header under ``operations``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import datetime as dt
+import os
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import orjson
+from prometheus_client import CollectorRegistry
+
+from schemas import DeploymentConfig
+
+from ..console import Progress, load_config
+from ..errors import ServiceError
+from ..state import CheckpointStore, LocalCheckpointStore, build_checkpoint_store, encode_stream_id
+from ..transports import FileTransport
+from ..transports.base import OutRecord, Record, Transport
+from .metrics import Metrics
+from .processor import RecordProcessor
+from .streams import StreamRegistry
+
+__all__ = ["RebuildReport", "add_stream_parser", "rebuild_stream", "reset_stream", "stream_records"]
+
+
+@dataclass
+class RebuildReport:
+    """What a rebuild found and did."""
+
+    stream: str
+    source: str
+    records: int
+    applied: int = 0
+    skipped: int = 0
+    dead_letters: int = 0
+    step: int | None = None
+    period: str | None = None
+    positions: dict[str, int] = field(default_factory=dict)
+    written: str | None = None
+
+
+def input_transport(config: DeploymentConfig) -> Transport:
+    """A transport over the deployment's input, used only to read it again."""
+    if config.transport == "kafka":
+        from ..transports.kafka import KafkaTransport
+
+        return KafkaTransport(config.kafka, config.service.max_message_bytes)
+    if config.file.input is None:
+        raise ServiceError("the deployment reads standard input, which cannot be read again; rebuild from --history CSV")
+    return FileTransport(config.file.input, None)
+
+
+async def stream_records(transport: Transport, stream_id: str, progress: Progress | None = None) -> list[Record]:
+    """Every input record whose message names ``stream_id``, partition by partition, oldest first."""
+    key = stream_id.encode()
+    ends = await transport.input_ends()
+    total = sum(ends.values())
+    seen, found = 0, []
+    for (topic, partition), end in sorted(ends.items()):
+        async for record in transport.earlier(topic, partition, end):
+            seen += 1
+            if progress is not None and seen % 500 == 0:
+                progress.update(seen, total)
+            if (record.key is not None and record.key != key) or key not in record.value:
+                continue
+            try:
+                raw = orjson.loads(record.value)
+            except orjson.JSONDecodeError:
+                continue
+            if isinstance(raw, dict) and raw.get("stream") == stream_id:
+                found.append(record)
+    if progress is not None:
+        progress.update(total, total)
+    return found
+
+
+def _history_records(config: DeploymentConfig, stream_id: str, path: Path) -> list[Record]:
+    from schemas import load_history
+
+    history = load_history(path)
+    topic = f"history:{path}"
+    return [
+        Record(value=orjson.dumps({"stream": stream_id, "period": period, "counts": counts}), key=stream_id.encode(), topic=topic, offset=i)
+        for i, (period, counts) in enumerate(zip(history.periods, history.values))
+    ]
+
+
+def _check_stream(config: DeploymentConfig, stream_id: str) -> None:
+    known = [s.id for s in config.streams]
+    if stream_id not in known:
+        raise ServiceError(f"stream {stream_id!r} is not configured; configured: {known}")
+
+
+def _write_outputs(out: Path, records: list[OutRecord]) -> None:
+    out.mkdir(parents=True, exist_ok=True)
+    names = {"estimates": "estimates.ndjson", "alerts": "alerts.ndjson", "dead_letters": "dead_letters.ndjson"}
+    for kind, name in names.items():
+        lines = [r.value + b"\n" for r in records if r.kind == kind]
+        if lines:
+            with open(out / name, "ab") as f:
+                f.writelines(lines)
+                f.flush()
+                os.fsync(f.fileno())
+
+
+def rebuild_stream(
+    config: DeploymentConfig,
+    stream_id: str,
+    *,
+    history: Path | None = None,
+    out: Path | None = None,
+    dry_run: bool = False,
+    store: CheckpointStore | None = None,
+    transport: Transport | None = None,
+    show_progress: bool = True,
+) -> RebuildReport:
+    """Rebuild the stream's cloud from its input (or ``history``) into a checkpoint."""
+    _check_stream(config, stream_id)
+    owned = store is None
+    store = store if store is not None else build_checkpoint_store(config)
+    try:
+        existing = store.list(stream_id)
+        if existing:
+            raise ServiceError(
+                f"stream {stream_id!r} already has {len(existing)} checkpoint(s) (newest step {existing[0].step}); "
+                "a rebuild starts from the prior and would fork its history: reset it first (casecloud stream reset), "
+                "which archives them"
+            )
+        if history is not None:
+            records, source = _history_records(config, stream_id, history), f"history file {history}"
+        else:
+            reader = transport or input_transport(config)
+            with Progress("reading input", 0, "records", enabled=show_progress) as shown:
+                records = asyncio.run(stream_records(reader, stream_id, shown))
+            source = "input topic " + config.kafka.input_topic if config.transport == "kafka" else f"input file {config.file.input}"
+        report = RebuildReport(stream_id, source, len(records))
+        if dry_run or not records:
+            return report
+        registry = StreamRegistry(config, store)
+        processor = RecordProcessor(config, registry, store, Metrics(registry=CollectorRegistry()))
+        outputs: list[OutRecord] = []
+        last = None
+
+        async def publish(batch: list[OutRecord]) -> None:
+            outputs.extend(batch)
+
+        async def replay() -> None:
+            nonlocal last
+            with Progress("rebuild", len(records), "records", enabled=show_progress) as shown:
+                for i, record in enumerate(records, start=1):
+                    outcome = await processor.handle(record, publish, defer_checkpoint=True)
+                    if outcome.status == "applied":
+                        report.applied += 1
+                        last = outcome.checkpoint
+                    elif outcome.status == "skipped":
+                        report.skipped += 1
+                    else:
+                        report.dead_letters += 1
+                    shown.update(i)
+
+        asyncio.run(replay())
+        if out is not None:
+            _write_outputs(out, outputs)
+        if last is None:
+            return report
+        runtime = registry.runtimes[stream_id]
+        runtime.operations.append({"action": "rebuild", "source": source, "records": len(records), "at": _now()})
+        checkpoint = runtime.to_checkpoint()
+        info = store.write(checkpoint)
+        report.step, report.period, report.positions = checkpoint.step, runtime.last_period, dict(runtime.positions)
+        report.written = str(info.path)
+        return report
+    finally:
+        close = getattr(store, "close", None)
+        if owned and close is not None:
+            close()
+
+
+def _now() -> str:
+    return dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat()
+
+
+def reset_stream(
+    config: DeploymentConfig,
+    stream_id: str,
+    *,
+    archive: Path | None = None,
+    dry_run: bool = False,
+    store: CheckpointStore | None = None,
+    transport: Transport | None = None,
+) -> dict[str, Any]:
+    """Archive the stream's checkpoints and start it from the prior with the next new record."""
+    _check_stream(config, stream_id)
+    owned = store is None
+    store = store if store is not None else build_checkpoint_store(config)
+    try:
+        infos = store.list(stream_id)
+        stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+        target = (archive or Path(f"{config.service.checkpoint_dir}-archive")) / f"{encode_stream_id(stream_id)}-{stamp}"
+        reader = transport or input_transport(config)
+        ends = asyncio.run(reader.input_ends())
+        positions = {f"{topic}|{partition}": end - 1 for (topic, partition), end in sorted(ends.items()) if end > 0}
+        plan = {
+            "stream": stream_id,
+            "archive": str(target) if infos else None,
+            "archived_steps": [i.step for i in infos],
+            "positions": positions,
+        }
+        if dry_run:
+            return plan
+        if infos:
+            target.mkdir(parents=True, exist_ok=False)
+            for info in infos:
+                if isinstance(store, LocalCheckpointStore):
+                    os.replace(info.path, target / info.path.name)  # moved, not deleted
+                else:
+                    data = store.read_bytes(stream_id, info.step)  # type: ignore[attr-defined]
+                    (target / f"{info.step:012d}.ckpt").write_bytes(data or b"")
+            if not isinstance(store, LocalCheckpointStore):
+                store.forget(stream_id)  # type: ignore[attr-defined]
+        registry = StreamRegistry(config, store)
+        runtime = registry.from_prior(stream_id)
+        runtime.positions = positions
+        runtime.operations.append({"action": "reset", "archive": plan["archive"], "archived_steps": plan["archived_steps"], "at": _now()})
+        info = store.write(runtime.to_checkpoint())
+        plan["written"] = str(info.path)
+        return plan
+    finally:
+        close = getattr(store, "close", None)
+        if owned and close is not None:
+            close()
+
+
+# -------------------------------------------------------------------- command
+def cmd_stream(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    try:
+        if args.action == "rebuild":
+            report = rebuild_stream(
+                config, args.stream, history=Path(args.history) if args.history else None,
+                out=Path(args.out) if args.out else None, dry_run=args.dry_run,
+            )
+            verb = "would replay" if args.dry_run else "replayed"
+            print(f"stream {report.stream}: {verb} {report.records} record(s) from the {report.source}", file=sys.stderr)
+            if not args.dry_run:
+                if report.written is None:
+                    print(f"casecloud: nothing was applied ({report.skipped} skipped, {report.dead_letters} dead letters); no checkpoint written", file=sys.stderr)
+                    return 1
+                print(
+                    f"applied {report.applied}, skipped {report.skipped}, dead letters {report.dead_letters}; "
+                    f"checkpoint step {report.step} (period {report.period}, positions {report.positions}) written to {report.written}",
+                    file=sys.stderr,
+                )
+        else:
+            plan = reset_stream(config, args.stream, archive=Path(args.archive) if args.archive else None, dry_run=args.dry_run)
+            print(orjson.dumps(plan, option=orjson.OPT_INDENT_2).decode())
+            if args.dry_run:
+                print("dry run: nothing was moved or written", file=sys.stderr)
+    except ServiceError as exc:
+        print(f"casecloud: {exc}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def add_stream_parser(sub) -> None:
+    p = sub.add_parser(
+        "stream",
+        help="operator actions on a stream's saved state: rebuild it from its history, or reset it to the prior",
+        description="rebuild: replay the stream's records from the input (or a history CSV) into a checkpoint the "
+        "running service resumes from. reset: archive the stream's checkpoints and start it from the prior with "
+        "the next new record. Stop the service first unless the stream is held for lost state.",
+    )
+    p.add_argument("action", choices=["rebuild", "reset"])
+    p.add_argument("--config", required=True, help="deployment config TOML (its checkpoint store and input are used)")
+    p.add_argument("--stream", required=True, help="the stream id")
+    p.add_argument("--history", help="rebuild: replay this history CSV instead of the input")
+    p.add_argument("--out", help="rebuild: also write the replayed estimates, alerts and dead letters here (NDJSON)")
+    p.add_argument("--archive", help="reset: where to move the checkpoints (default: <checkpoint_dir>-archive/)")
+    p.add_argument("--dry-run", action="store_true", help="say what would be done; change nothing")
+    p.set_defaults(handler=cmd_stream)
