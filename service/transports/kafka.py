@@ -78,6 +78,13 @@ async def stop_quietly(*clients: Any, what: str = "Kafka client") -> None:
         if client is not None:
             try:
                 await client.stop()
+            except asyncio.CancelledError:
+                # aiokafka re-raises the cancellation of its own background task when a
+                # consumer is stopped right after it started; only ours must propagate.
+                task = asyncio.current_task()
+                if task is not None and task.cancelling():
+                    raise
+                log.debug("a %s raised its internal cancellation while stopping", what)
             except Exception as exc:
                 log.warning("error while stopping a %s: %s", what, exc)
 
@@ -300,19 +307,29 @@ class KafkaTransport(Transport):
         return out
 
     async def input_ends(self) -> dict[tuple[str, int], int]:
-        """End offsets of every partition of the input topic (a short-lived consumer, no group)."""
+        """End offsets of every partition of the input topic (an admin client for the
+        partition list, a consumer of no group for the offsets)."""
+        from aiokafka.admin import AIOKafkaAdminClient
+
         s = self.settings
+        admin = AIOKafkaAdminClient(bootstrap_servers=s.bootstrap_servers, client_id=f"{s.client_id}-ends", **self._security())
         reader = AIOKafkaConsumer(bootstrap_servers=s.bootstrap_servers, client_id=f"{s.client_id}-ends", group_id=None, **self._security())
         try:
+            await admin.start()
+            described = [d for d in await admin.describe_topics([s.input_topic]) if d["topic"] == s.input_topic]
+            if not described or described[0]["error_code"] != 0:
+                raise TransportError(f"input topic {s.input_topic!r} is not in the cluster: {described}", topic=s.input_topic)
+            tps = [TopicPartition(s.input_topic, d["partition"]) for d in described[0]["partitions"]]
             await reader.start()
-            partitions = await reader.partitions_for_topic(s.input_topic) or set()
-            tps = [TopicPartition(s.input_topic, p) for p in sorted(partitions)]
             ends = await reader.end_offsets(tps) if tps else {}
-            return {(tp.topic, tp.partition): int(offset) for tp, offset in ends.items()}
+            return {(tp.topic, tp.partition): int(offset) for tp, offset in sorted(ends.items())}
+        except TransportError:
+            raise
         except Exception as exc:
             raise translate_error(exc, f"look up the end of {s.input_topic}", s.input_topic) from exc
         finally:
             await stop_quietly(reader, what="end-offset reader")
+            await admin.close()
 
     async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
         """Read the partition from its earliest retained offset up to ``before`` with a
