@@ -10,6 +10,9 @@ from ._forecast import FORECAST_LEVELS, FirstExceedance, Forecast, forecast
 from ._filter import FilterConfig, ParticleFilter, StepResult
 from ._interventions import DayEffects, Effects, InterventionError, compile_interventions
 from ._linear_gaussian import LocalLevelModel
+from ._individual import IndividualModel
+from ._families import build_model
+from ._population import Population, PopulationError, Venues, build_population
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._nowcast import NowcastEntry, nowcast
@@ -89,6 +92,12 @@ __all__ = [
     "Forecast",
     "forecast",
     "LocalLevelModel",
+    "IndividualModel",
+    "build_model",
+    "Population",
+    "PopulationError",
+    "Venues",
+    "build_population",
     "Model",
     "ModelError",
     "Observation",

@@ -1,0 +1,569 @@
+"""An individual-based model: every particle is a whole town of people.
+
+The population (households, schools, workplaces, age bands) is drawn once from
+its seed (:func:`filters.build_population`) and shared by all particles; what
+differs between particles is who is infected, when, and the parameters.
+
+State: one byte per person and particle
+---------------------------------------
+``ParticleSet.states`` is an array of shape (n_particles, people), uint8. The
+byte holds the person's stage and the whole days left in it:
+
+==========  =========================================================
+0 .. 126    latent (infected, not yet infectious), ``code + 1`` days left
+127 .. 189  infectious with symptoms, ``code - 126`` days left (1 .. 63)
+190 .. 252  infectious without symptoms, ``code - 189`` days left
+254         recovered (immune)
+255         susceptible
+==========  =========================================================
+
+Everyone latent or infectious has a code below 253, so one comparison over
+the array finds them. So latent periods are at most 127 days and infectious periods at most 63 (the
+spec is checked against these limits). Resampling gathers whole towns
+(``ParticleSet.take``). ``history`` (n_particles, history_days, slots, bands),
+int32, newest day first, holds each day's event counts per age band (the
+series read it, through the shared observation layer :mod:`filters._series`),
+the day's infections by where they happened, the infectious person-days, and
+the end-of-day number of people in each stage (so summaries never scan the
+people).
+
+One day
+-------
+Transitions happen at the end of a day. On day ``d``:
+
+1. One scan of the state finds the latent and infectious people.
+2. Each infectious person ``j`` (weight ``w_j`` = 1, or the asymptomatic
+   relative infectiousness) makes a Poisson number of infectious contacts with
+   mean ``w_j x sum over places of beta_place x m/(m - 1)`` (``m`` the members
+   of ``j``'s household or setting place; community: ``beta_community``), each
+   to a uniformly chosen member of the place the contact happened in (the
+   place chosen in proportion to its part of the mean). A contact to oneself
+   is wasted, so each *other* member is contacted at rate ``beta / (m - 1)``
+   (frequency-dependent transmission). Importation adds ``Poisson(iota)``
+   contacts from outside per day, each to a uniformly chosen person.
+   By the superposition and thinning of Poisson processes, each susceptible
+   person ``i`` then receives a Poisson number of contacts with mean
+   ``lambda_i = sum_j rate_ij + iota / N`` independently of everyone else, and
+   is infected if it is at least one: probability ``1 - exp(-lambda_i)``, the
+   same law as drawing one Bernoulli per susceptible person, at a cost
+   proportional to the number of contacts instead of the number of people.
+   A person contacted twice is infected once; the place of infection (and
+   whether it came from outside) is the place of one of their contacts chosen
+   uniformly, i.e. with probability proportional to its rate.
+3. Everyone who was latent or infectious at the start of the day loses one
+   day; a latent period that ends starts an infectious period (drawn then,
+   with the asymptomatic share of the person's band); an infectious period that
+   ends makes the person recovered.
+4. The day's infected draw a latent period; with 0 days they are infectious
+   from the next day (a symptom onset on the day of infection).
+
+Events are counted on the day they happen: ``infection``, ``onset`` (start of
+infectiousness with symptoms), ``infectious`` (start of infectiousness, with
+or without symptoms) and ``recovery``.
+
+Reproduction number
+-------------------
+``R_eff`` is the mean number of people a person infected now would go on to
+infect if transmission per unit of infectiousness stayed as it has been over
+the last ``R_WINDOW`` days: per particle,
+
+    R_eff = (infections caused by the town's own cases in the window)
+            / (infectious person-days in the window, asymptomatic ones weighted)
+            x (mean infectious person-days of one infection, so weighted).
+
+It is tracked per particle from the realised infections of its own path (no
+re-simulation). In a large homogeneously mixing population with everyone
+susceptible its expectation is ``beta x E[infectious days] x E[weight]``, the
+basic reproduction number, and it falls with the susceptible share as the
+next-generation R_eff of the compartmental models does; with households it
+also falls as cases' households are already infected. It is NaN when no one
+was infectious in the window.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from schemas import DiscretePeriod, GammaPeriod, GeometricPeriod, IndividualModelSpec
+
+from ._compartmental import ModelError, _shift_days
+from ._particles import ParticleSet
+from ._population import Population, build_population
+from ._priors import from_unconstrained, sample_prior, to_unconstrained
+from ._reports import ReportingCdfTable
+from ._series import ObservedSeries, compile_series, mask_groups
+
+__all__ = ["IndividualModel", "period_pmf", "SUSCEPTIBLE", "RECOVERED", "R_WINDOW"]
+
+SUSCEPTIBLE = 255
+RECOVERED = 254
+SYMPTOMATIC_BASE = 127  # infectious with symptoms: 127 + days left - 1
+ASYMPTOMATIC_BASE = 190  # infectious without symptoms: 190 + days left - 1
+R_WINDOW = 7
+_ACTIVE_BELOW = np.uint8(253)  # latent or infectious
+_ONE = np.uint8(1)
+# People per block when drawing the initial state (bounds its temporary memory;
+# a fixed number so the draws do not depend on the machine).
+_INITIAL_BLOCK = 64
+
+
+def period_pmf(period: Any, shortest: int) -> tuple[np.ndarray, np.ndarray]:
+    """(days, probabilities) of a stage's length in whole days.
+
+    ``gamma``: mass on [d - 0.5, d + 0.5) for d = shortest .. max_days, the
+    shortest day also taking everything below it, renormalised (the mass above
+    max_days + 0.5 is dropped). ``geometric``: P(d) = (1 - q) q^(d - 1),
+    q = exp(-rate), d = 1 .. max_days, renormalised. ``discrete``: as given.
+    """
+    if isinstance(period, DiscretePeriod):
+        w = np.asarray(period.weights, dtype=float)
+        days = np.asarray(period.days, dtype=np.int64)
+        keep = w > 0
+        return days[keep], w[keep] / w[keep].sum()
+    if isinstance(period, GammaPeriod):
+        top = max(period.max_days, shortest)
+        days = np.arange(shortest, top + 1, dtype=np.int64)
+        shape = (period.mean / period.sd) ** 2
+        cdf = stats.gamma.cdf(days + 0.5, shape, scale=period.sd**2 / period.mean)
+        mass = np.diff(np.concatenate([[0.0], cdf]))
+    elif isinstance(period, GeometricPeriod):
+        days = np.arange(max(shortest, 1), period.max_days + 1, dtype=np.int64)
+        q = math.exp(-period.rate)
+        mass = (1.0 - q) * q ** (days - 1.0)
+    else:  # pragma: no cover - the schema admits no other kind
+        raise ModelError(f"period {period!r} not known")
+    if not mass.sum() > 0:
+        raise ModelError(f"period {period!r} puts no mass on days {days[0]}..{days[-1]}")
+    return days, mass / mass.sum()
+
+
+class _Table:
+    """Inverse-CDF sampling of whole days from a pmf."""
+
+    def __init__(self, days: np.ndarray, probs: np.ndarray) -> None:
+        self.days, self.probs = days, probs
+        self.cdf = np.cumsum(probs)
+        self.cdf[-1] = 1.0
+        self.mean = float(days @ probs)
+
+    def __call__(self, u: np.ndarray) -> np.ndarray:
+        return self.days[np.minimum(np.searchsorted(self.cdf, u, side="right"), self.days.size - 1)]
+
+    def laplace(self, theta: float) -> float:
+        """E[exp(-theta D)]."""
+        return float(self.probs @ np.exp(-theta * self.days))
+
+
+class IndividualModel(ObservedSeries):
+    """The individual-based family (implements ``filters.Model``).
+
+    Parameters
+    ----------
+    spec : IndividualModelSpec
+    window_days : days back a late or revised value is still assimilated
+        (default: the spec's ``window_days``, else its longest delay).
+    population : an already drawn population of ``spec.population`` (drawn here if None).
+    """
+
+    def __init__(self, spec: IndividualModelSpec, window_days: int | None = None, population: Population | None = None) -> None:
+        self.spec = spec
+        self.population = population if population is not None else build_population(spec.population)
+        pop = self.population
+        if pop.size != spec.population.size or pop.band_names != spec.band_names:
+            raise ModelError(f"the population given is not the one model {spec.name!r} declares")
+        self.people = pop.size
+        self.groups = list(spec.band_names)
+        self.n_groups = len(self.groups)
+        # Parameters, as compartmental specs have them.
+        self.param_names = list(spec.parameters)
+        self._pidx = {p: i for i, p in enumerate(self.param_names)}
+        params = spec.parameters
+        self.static_parameters = np.array([i for i, p in enumerate(params.values()) if p.kind == "static"], dtype=np.intp)
+        self._drifting = np.array([i for i, p in enumerate(params.values()) if p.kind == "drifting"], dtype=np.intp)
+        self._transforms = [(p.transform, p.bounds) for p in params.values()]
+        self._volatility = np.array([p.volatility for p in params.values()])
+        # Places: household, each setting, the community.
+        tr = spec.transmission
+        self.places = ["household", *[v.name for v in pop.settings], "community"]
+        rates = [tr.household, *[tr.settings.get(v.name, 0.0) for v in pop.settings], tr.community]
+        self._beta = [self._value(r, f"transmission rate of {name!r}") for r, name in zip(rates, self.places)]
+        self._iota = self._value(tr.importation, "transmission.importation")
+        self._person_factor = self._place_factors()
+        self._community_targets()
+        self._venues = [pop.households, *pop.settings, None]  # None: the community
+        self._factor_columns = [np.ascontiguousarray(self._person_factor[:, k]) for k in range(len(self.places))]
+        self._edges: dict[int, np.ndarray] = {}
+        # Disease histories.
+        d = spec.disease
+        self.latent = _Table(*period_pmf(d.latent, 0))
+        self.infectious = _Table(*period_pmf(d.infectious, 1))
+        asym = d.asymptomatic
+        self.asymptomatic = np.array(
+            [asym.get(b, 0.0) if isinstance(asym, dict) else asym for b in self.groups], dtype=float
+        )
+        self.relative = float(d.asymptomatic_infectiousness)
+        # Mean weighted infectious person-days of one infection, by band.
+        self.lifetime = self.infectious.mean * (1.0 - self.asymptomatic + self.asymptomatic * self.relative)
+        # History slots.
+        self.slots = [
+            "infection", "onset", "infectious", "recovery",
+            *[f"infection.{p}" for p in self.places], "infection.imported",
+            "infectious_days.symptomatic", "infectious_days.asymptomatic",
+            "stock.S", "stock.E", "stock.I", "stock.R",
+        ]  # fmt: skip
+        self._slot = {name: k for k, name in enumerate(self.slots)}
+        self._cause0 = self._slot["infection.household"]
+        self._stocks = [self._slot[f"stock.{c}"] for c in "SEIR"]
+        # Series, through the shared observation layer.
+        longest = max(
+            [s.delay.max_days for s in spec.series if s.delay is not None]
+            + [s.reporting_delay.max_days for s in spec.series if s.reporting_delay is not None]
+            + [0]
+        )
+        self.default_window_days = spec.window_days if spec.window_days is not None else longest
+        self.window_days = self.default_window_days if window_days is None else int(window_days)
+        if not 0 <= self.window_days <= 120:
+            raise ModelError(f"window_days must be between 0 and 120, got {self.window_days}")
+        self.series, history_days = compile_series(
+            spec.series, self.groups, lambda s: self._slot[s.flow], self._resolve, self.window_days
+        )
+        # R_eff reads R_WINDOW days; one more keeps the stocks at the start of the window.
+        self.history_days = max(history_days, R_WINDOW + 1)
+        self._series_by_name = {s.name: s for s in self.series}
+        self._cdf_tables: dict[str, ReportingCdfTable] = {}
+        self._mask_groups = mask_groups(self.series)
+
+    # --------------------------------------------------------------- compile
+    def _resolve(self, ref: float | str | None, where: str) -> int | None:
+        if isinstance(ref, str):
+            if ref in self._pidx:
+                return self._pidx[ref]
+            raise ModelError(f"model {self.spec.name!r}, {where}: {ref!r} must be a parameter; allowed: {self.param_names}")
+        return None
+
+    def _value(self, ref: float | str, where: str) -> tuple[float, int | None]:
+        col = self._resolve(ref, where)
+        return (0.0, col) if col is not None else (float(ref), None)
+
+    def _place_factors(self) -> np.ndarray:
+        """(people, places) float64: m / (m - 1) for each person's household and
+        setting place of m members (0 where m < 2 or no place), and the
+        community factor of the person's band."""
+        pop = self.population
+        out = np.zeros((pop.size, len(self.places)))
+        for k, venues in enumerate([pop.households, *pop.settings]):
+            sizes = venues.sizes.astype(float)
+            factor = np.where(sizes >= 2, sizes / np.maximum(sizes - 1.0, 1.0), 0.0)
+            has = venues.venue >= 0
+            out[has, k] = factor[venues.venue[has]]
+        return out
+
+    def _community_targets(self) -> None:
+        """Community mixing by band: rows of ``contact`` the band infected, columns the
+        infecting band. Susceptibles of band a are infected at rate
+        beta_c sum_b C[a, b] I_b / N_b, so a case of band b makes contacts at rate
+        beta_c sum_a C[a, b] N_a / N_b spread over band a in proportion to C[a, b] N_a.
+        Default C[a, b] = N_b / N: everyone mixes with everyone (rate beta_c, targets uniform)."""
+        pop = self.population
+        counts = pop.band_counts().astype(float)
+        contact = self.spec.transmission.community_contact
+        C = np.array(contact, dtype=float) if contact is not None else np.broadcast_to(counts / counts.sum(), (counts.size, counts.size))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            toward = C * counts[:, None]  # [a, b] = C[a, b] N_a
+            factor = np.where(counts > 0, toward.sum(axis=0) / counts, 0.0)
+            share = np.where(toward.sum(axis=0) > 0, toward / toward.sum(axis=0), 0.0)
+        self._community_factor = factor  # (bands,) by the infecting band
+        self._homogeneous = contact is None
+        self._person_factor[:, -1] = factor[pop.band]
+        cdf = np.cumsum(share.T, axis=1)  # row b: cumulative over target bands a
+        cdf[:, -1] = 1.0
+        self._community_cdf = cdf
+        order = np.argsort(pop.band, kind="stable").astype(np.int32)
+        self._band_members = order
+        self._band_start = np.concatenate([[0], np.cumsum(pop.band_counts())]).astype(np.int64)
+
+    def _particle_edges(self, n: int) -> np.ndarray:
+        edges = self._edges.get(n)
+        if edges is None:
+            edges = self._edges[n] = np.arange(n + 1)
+        return edges
+
+    # -------------------------------------------------------------- protocol
+    def fingerprint(self) -> str:
+        fp = self.spec.fingerprint()
+        if self.window_days == self.default_window_days:
+            return fp
+        return hashlib.sha256(f"{fp}|window_days={self.window_days}".encode()).hexdigest()[:16]
+
+    def initial(self, n: int, rng: np.random.Generator) -> ParticleSet:
+        params = np.empty((n, len(self.param_names)))
+        for j, p in enumerate(self.spec.parameters.values()):
+            params[:, j] = p.value if p.kind == "fixed" else sample_prior(p.prior, rng, n)
+        init = self.spec.initial
+
+        def draw(quantity: Any) -> np.ndarray:
+            return np.full(n, float(quantity)) if isinstance(quantity, (int, float)) else sample_prior(quantity, rng, n)
+
+        recovered = np.clip(draw(init.recovered), 0.0, 1.0)
+        exposed = np.maximum(np.rint(draw(init.exposed)), 0).astype(np.int64)
+        infectious = np.maximum(np.rint(draw(init.infectious)), 0).astype(np.int64)
+        P = self.people
+        codes = np.full((n, P), SUSCEPTIBLE, dtype=np.uint8)
+        for lo in range(0, n, _INITIAL_BLOCK):
+            hi = min(n, lo + _INITIAL_BLOCK)
+            block = codes[lo:hi]
+            immune = rng.random((hi - lo, P)) < recovered[lo:hi, None]
+            block[immune] = RECOVERED
+            keys = rng.random((hi - lo, P))
+            keys[immune] = 2.0
+            free = P - immune.sum(axis=1)
+            e = np.minimum(exposed[lo:hi], free)
+            i = np.minimum(infectious[lo:hi], free - e)
+            k = int((e + i).max(initial=0))
+            if k == 0:
+                continue
+            # The k smallest keys of each row, in key order: a uniform random ordering of the susceptibles.
+            chosen = np.argpartition(keys, k - 1, axis=1)[:, :k] if k < P else np.tile(np.arange(P), (hi - lo, 1))
+            chosen = np.take_along_axis(chosen, np.argsort(np.take_along_axis(keys, chosen, axis=1), axis=1), axis=1)
+            rank = np.arange(k)[None, :]
+            rows = np.broadcast_to(np.arange(hi - lo)[:, None], chosen.shape)
+            as_e = rank < e[:, None]
+            as_i = (rank >= e[:, None]) & (rank < (e + i)[:, None])
+            lat = np.maximum(self.latent(rng.random(int(as_e.sum()))), 1)
+            block[rows[as_e], chosen[as_e]] = (lat - 1).astype(np.uint8)
+            people = chosen[as_i]
+            block[rows[as_i], people] = self._infectious_codes(people, rng)
+        history = np.zeros((n, self.history_days, len(self.slots), self.n_groups), dtype=np.int32)
+        history[:, 0, self._stocks, :] = self._stage_counts(codes)
+        return ParticleSet(states=codes, params=params, history=history)
+
+    def _infectious_codes(self, people: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+        """Codes of people starting an infectious period: asymptomatic by their band's share, days drawn."""
+        u = rng.random((people.size, 2))
+        silent = u[:, 0] < self.asymptomatic[self.population.band[people]]
+        days = self.infectious(u[:, 1])
+        return (np.where(silent, ASYMPTOMATIC_BASE - 1, SYMPTOMATIC_BASE - 1) + days).astype(np.uint8)
+
+    def _stage_counts(self, codes: np.ndarray) -> np.ndarray:
+        """(n, 4, bands) people in S, E, I, R by band (a full scan; used at the start only)."""
+        onehot = np.zeros((self.people, self.n_groups), dtype=np.float32)
+        onehot[np.arange(self.people), self.population.band] = 1.0
+        stages = [codes == SUSCEPTIBLE, codes < SYMPTOMATIC_BASE, (codes >= SYMPTOMATIC_BASE) & (codes < _ACTIVE_BELOW), codes == RECOVERED]
+        return np.stack([np.rint(s.astype(np.float32) @ onehot) for s in stages], axis=1).astype(np.int32)
+
+    def _column(self, params: np.ndarray, col: int | None, const: float) -> np.ndarray | float:
+        return params[:, col] if col is not None else const
+
+    def _rates(self, params: np.ndarray, factors: np.ndarray | None = None) -> np.ndarray:
+        """(n, places) daily transmission rates of every particle (times intervention factors)."""
+        n = params.shape[0]
+        out = np.empty((n, len(self.places)))
+        for k, (const, col) in enumerate(self._beta):
+            out[:, k] = params[:, col] if col is not None else const
+        np.maximum(out, 0.0, out=out)
+        if factors is not None:
+            out *= factors
+        return out
+
+    def advance(self, particles: ParticleSet, t0: int, t1: int, rng: np.random.Generator, effects: Any = None) -> None:
+        """Move every particle's town from day t0 to day t1 (in place).
+
+        ``effects``: interventions compiled for this model
+        (:func:`filters.compile_setting_interventions`), consulted once per day;
+        with None every day runs (and draws) as without interventions.
+        """
+        if t1 < t0:
+            raise ValueError(f"cannot advance backwards from day {t0} to day {t1}")
+        codes = particles.states
+        if not codes.flags.c_contiguous:
+            particles.states = codes = np.ascontiguousarray(codes)
+        for day in range(t0, t1):
+            self._drift(particles.params, rng)
+            # (n, places + 1) rate factors of the interventions in force (last column: importation), or None.
+            factors = None if effects is None else effects.factors(day, particles.params.shape[0])
+            self._day(codes, particles.params, particles.history, rng, factors)
+
+    def _day(self, codes: np.ndarray, params: np.ndarray, history: np.ndarray, rng: np.random.Generator, factors: np.ndarray | None) -> None:
+        n, P = codes.shape
+        pop = self.population
+        flat = codes.reshape(-1)
+        # 1. Who is latent or infectious at the start of the day.
+        active = np.flatnonzero(flat < _ACTIVE_BELOW)
+        code = flat[active]
+        is_inf = code >= SYMPTOMATIC_BASE
+        inf = active[is_inf]
+        inf_code = code[is_inf]
+        inf_particle = inf // P
+        inf_person = (inf - inf_particle * P).astype(np.intp)
+        silent = inf_code >= ASYMPTOMATIC_BASE
+        weight = np.where(silent, self.relative, 1.0)
+        # 2. Infectious contacts: per particle and place a Poisson total, each contact's
+        # source drawn in proportion to its rate, its target uniformly in the source's place.
+        beta = self._rates(params, None if factors is None else factors[:, :-1])
+        contacted, cause = [], []
+        for k, venues in enumerate(self._venues):
+            rate = self._factor_columns[k][inf_person] * weight
+            pos = np.flatnonzero(rate > 0)
+            if pos.size == 0:
+                continue
+            cum = np.cumsum(rate[pos])
+            bounds = np.searchsorted(inf_particle[pos], self._particle_edges(n))
+            low = np.where(bounds[:-1] > 0, cum[np.maximum(bounds[:-1] - 1, 0)], 0.0)
+            pressure = np.where(bounds[1:] > bounds[:-1], cum[np.maximum(bounds[1:] - 1, 0)] - low, 0.0)
+            made = rng.poisson(beta[:, k] * pressure)
+            particle = np.repeat(np.arange(n), made)
+            u = rng.random((particle.size, 2))
+            picked = np.searchsorted(cum, low[particle] + u[:, 0] * pressure[particle], side="right")
+            picked = np.clip(picked, bounds[particle], bounds[particle + 1] - 1)
+            who = inf_person[pos[picked]]
+            if venues is not None:
+                v = venues.venue[who]
+                first = venues.start[v]
+                target = venues.members[first + (u[:, 1] * (venues.start[v + 1] - first)).astype(np.int64)]
+            elif self._homogeneous:
+                target = (u[:, 1] * P).astype(np.int64)
+            else:
+                cdf = self._community_cdf[pop.band[who]]
+                to_band = np.minimum((cdf <= rng.random(particle.size)[:, None]).sum(axis=1), self.n_groups - 1)
+                first = self._band_start[to_band]
+                target = self._band_members[first + (u[:, 1] * (self._band_start[to_band + 1] - first)).astype(np.int64)]
+            contacted.append(particle * P + target)
+            cause.append(np.full(particle.size, k, dtype=np.int8))
+        iota = self._column(params, self._iota[1], self._iota[0])
+        if factors is not None:
+            iota = iota * factors[:, -1]  # the last column scales importation
+        imports = rng.poisson(np.broadcast_to(np.maximum(iota, 0.0), (n,)))
+        particle = np.repeat(np.arange(n), imports)
+        contacted.append(particle * P + (rng.random(particle.size) * P).astype(np.int64))
+        cause.append(np.full(particle.size, len(self.places), dtype=np.int8))
+        contacted_all = np.concatenate(contacted)
+        cause_all = np.concatenate(cause)
+        hit = flat[contacted_all] == SUSCEPTIBLE
+        contacted_all, cause_all = contacted_all[hit], cause_all[hit]
+        # A person contacted more than once is infected once, by one of their contacts chosen uniformly.
+        order = np.argsort(contacted_all, kind="stable")
+        ranked = contacted_all[order]
+        first = np.ones(ranked.size, dtype=bool)
+        np.not_equal(ranked[1:], ranked[:-1], out=first[1:])
+        starts = np.flatnonzero(first)
+        infected = ranked[starts]
+        counts = np.diff(np.append(starts, ranked.size))
+        pick = starts.copy()
+        multi = np.flatnonzero(counts > 1)
+        if multi.size:
+            pick[multi] += (rng.random(multi.size) * counts[multi]).astype(np.intp)
+        cause = cause_all[order[pick]].astype(np.intp)
+        # 3. A day passes for everyone latent or infectious since the morning.
+        ends_latent = code == 0
+        ends_infectious = (code == SYMPTOMATIC_BASE) | (code == ASYMPTOMATIC_BASE)
+        code -= _ONE
+        code[ends_infectious] = RECOVERED
+        started = active[ends_latent]
+        started_person = started % P
+        code[ends_latent] = self._infectious_codes(started_person, rng)
+        flat[active] = code
+        # 4. The day's infected start their latent period (or, with 0 days, their infectious one).
+        infected_person = infected % P
+        latent = self.latent(rng.random(infected.size))
+        new_code = (latent - 1).astype(np.uint8)  # latent 0 wraps to 255 and is overwritten below
+        at_once = latent == 0
+        if at_once.any():
+            new_code[at_once] = self._infectious_codes(infected_person[at_once], rng)
+        flat[infected] = new_code
+        # 5. The day's counts.
+        self._tally(history, n, inf_particle, inf_person, silent, infected, infected_person, cause, new_code[at_once],
+                    infected[at_once], started, started_person, code[ends_latent], active[ends_infectious])
+
+    def _tally(self, history, n, inf_particle, inf_person, silent, infected, infected_person, cause,
+               at_once_code, at_once, started, started_person, started_code, recovered) -> None:
+        P, B, S = self.people, self.n_groups, len(self.slots)
+        band = self.population.band
+        slot = self._slot
+        parts_key = []
+
+        def add(flat_index: np.ndarray, person: np.ndarray, slots: np.ndarray | int) -> None:
+            particle = flat_index // P
+            parts_key.append((particle * S + slots) * B + band[person])
+
+        add(infected, infected_person, slot["infection"])
+        add(infected, infected_person, self._cause0 + cause)
+        onset_codes = np.concatenate([started_code, at_once_code])
+        onset_flat = np.concatenate([started, at_once])
+        onset_person = onset_flat % P
+        add(onset_flat, onset_person, slot["infectious"])
+        symptomatic = onset_codes < ASYMPTOMATIC_BASE
+        add(onset_flat[symptomatic], onset_person[symptomatic], slot["onset"])
+        add(recovered, recovered % P, slot["recovery"])
+        days_slot = np.where(silent, slot["infectious_days.asymptomatic"], slot["infectious_days.symptomatic"])
+        parts_key.append((inf_particle * S + days_slot) * B + band[inf_person])
+        counts = np.bincount(np.concatenate(parts_key), minlength=n * S * B).reshape(n, S, B).astype(history.dtype)
+        _shift_days(history)
+        infection, infectious, recovery = counts[:, slot["infection"]], counts[:, slot["infectious"]], counts[:, slot["recovery"]]
+        s_, e_, i_, r_ = self._stocks
+        counts[:, s_] = history[:, 1, s_] - infection
+        counts[:, e_] = history[:, 1, e_] + infection - infectious
+        counts[:, i_] = history[:, 1, i_] + infectious - recovery
+        counts[:, r_] = history[:, 1, r_] + recovery
+        history[:, 0] = counts
+
+    def _drift(self, params: np.ndarray, rng: np.random.Generator) -> None:
+        for j in self._drifting:
+            transform, bounds = self._transforms[j]
+            y = to_unconstrained(np.ascontiguousarray(params[:, j]), transform, bounds)
+            y = y + self._volatility[j] * rng.standard_normal(params.shape[0])
+            params[:, j] = from_unconstrained(y, transform, bounds)
+
+    # ------------------------------------------------------------- summaries
+    def reproduction_number(self, particles: ParticleSet, t: float = 0.0, today: Any = None) -> np.ndarray:
+        """R_eff per particle over the last ``R_WINDOW`` days (see the module docstring)."""
+        h = particles.history[:, :R_WINDOW]
+        slot = self._slot
+        infections = h[:, :, slot["infection"]].sum(axis=1).astype(float)  # (n, B)
+        caused = infections.sum(axis=1) - h[:, :, slot["infection.imported"]].sum(axis=(1, 2))
+        person_days = (
+            h[:, :, slot["infectious_days.symptomatic"]].sum(axis=(1, 2))
+            + self.relative * h[:, :, slot["infectious_days.asymptomatic"]].sum(axis=(1, 2))
+        )
+        mix = np.where(infections.sum(axis=1, keepdims=True) > 0, infections, self.population.band_counts()[None, :])
+        lifetime = (mix @ self.lifetime) / mix.sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(person_days > 0, caused / person_days * lifetime, np.nan)
+
+    def stage_counts(self, particles: ParticleSet) -> np.ndarray:
+        """(n, 4, bands) people susceptible, latent, infectious and recovered at the end of the cloud's day."""
+        return particles.history[:, 0, self._stocks, :]
+
+    def describe(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
+        out: dict[str, np.ndarray] = {}
+        h = particles.history
+        for c, k in zip("SEIR", self._stocks):
+            for g, band in enumerate(self.groups):
+                out[f"{c}[{band}]"] = h[:, 0, k, g]
+        for event in ("infection", "onset"):
+            for g, band in enumerate(self.groups):
+                out[f"incidence.{event}[{band}]"] = h[:, 0, self._slot[event], g]
+        for place in [*self.places, "imported"]:
+            out[f"infections_{R_WINDOW}d.{place}"] = h[:, :R_WINDOW, self._slot[f"infection.{place}"]].sum(axis=(1, 2))
+        for j, name in enumerate(self.param_names):
+            if self.spec.parameters[name].kind != "fixed":
+                out[name] = particles.params[:, j]
+        out["R_eff"] = self.reproduction_number(particles, t)
+        return out
+
+    # ------------------------------------------------------------ transforms
+    def to_unconstrained(self, params: np.ndarray) -> np.ndarray:
+        out = np.array(params, dtype=float)
+        for j, (transform, bounds) in enumerate(self._transforms):
+            out[..., j] = to_unconstrained(out[..., j], transform, bounds)
+        return out
+
+    def from_unconstrained(self, values: np.ndarray) -> np.ndarray:
+        out = np.array(values, dtype=float)
+        for j, (transform, bounds) in enumerate(self._transforms):
+            out[..., j] = from_unconstrained(out[..., j], transform, bounds)
+        return out
