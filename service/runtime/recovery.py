@@ -45,7 +45,15 @@ from .metrics import Metrics
 from .processor import RecordProcessor
 from .streams import StreamRegistry
 
-__all__ = ["RebuildReport", "add_stream_parser", "rebuild_stream", "reset_stream", "stream_records"]
+__all__ = [
+    "RebuildReport",
+    "add_stream_parser",
+    "migrate_stream",
+    "rebuild_stream",
+    "reset_stream",
+    "resize_stream",
+    "stream_records",
+]
 
 
 @dataclass
@@ -256,6 +264,182 @@ def reset_stream(
             close()
 
 
+def _load(config: DeploymentConfig, stream_id: str, store: CheckpointStore, model=None):
+    """The stream's runtime restored from its newest checkpoint (raises if it has none)."""
+    registry = StreamRegistry(config, store)
+    if model is not None:
+        registry.models[stream_id] = model
+    runtime = registry.get(stream_id)
+    assert runtime is not None
+    if runtime.fresh:
+        raise ServiceError(f"stream {stream_id!r} has no checkpoint to change; nothing was done")
+    return registry, runtime
+
+
+def resize_stream(
+    config: DeploymentConfig, stream_id: str, particles: int, *, dry_run: bool = False, store: CheckpointStore | None = None
+) -> dict[str, Any]:
+    """Change the stream's particle count: draw the new cloud from the weighted old one.
+
+    Systematic resampling of ``particles`` indices by weight (copies of a particle
+    when growing, a weighted subset when shrinking); the new particles carry equal
+    weights, the same paths and parameters, and the generator goes on from its
+    saved state. Logged under ``operations``; set ``particles`` in the config to
+    match, or the start-up report says they differ.
+    """
+    import numpy as np
+
+    from filters import resample
+
+    _check_stream(config, stream_id)
+    if not 10 <= particles <= 1_000_000:
+        raise ServiceError(f"particles must be between 10 and 1000000, got {particles}")
+    owned = store is None
+    store = store if store is not None else build_checkpoint_store(config)
+    try:
+        _, runtime = _load(config, stream_id, store)
+        pf = runtime.filter
+        before, ess = pf.config.n_particles, pf.ess()
+        plan = {"stream": stream_id, "step": pf.step_count, "particles": [before, particles], "ess": ess}
+        if dry_run:
+            return plan
+        from dataclasses import replace
+
+        weights = pf.weights()
+        # a systematic draw of the new size (the scheme's own resampler, with the stream's generator)
+        index = resample(weights, pf.rng, "systematic", n=particles)
+        pf.particles = pf.particles.take(index)
+        pf.particles.log_weights = np.zeros(particles)
+        pf.lineage = pf.lineage[index]
+        pf.config = replace(pf.config, n_particles=particles)
+        runtime.operations.append({"action": "resize", "from": before, "to": particles, "ess_before": ess, "at": _now()})
+        info = store.write(runtime.to_checkpoint())
+        plan["written"] = str(info.path)
+        return plan
+    finally:
+        close = getattr(store, "close", None)
+        if owned and close is not None:
+            close()
+
+
+def migrate_stream(
+    config: DeploymentConfig, stream_id: str, *, dry_run: bool = False, store: CheckpointStore | None = None
+) -> dict[str, Any]:
+    """Move the stream's cloud to the model spec the config now names, where it maps.
+
+    The checkpoint was written for an older spec (its fingerprint differs). Mapped:
+    compartments and groups (they must be the same names, in any order; otherwise
+    refused), parameters of the same name (values kept), the incidence history of
+    flows observed by both (the days both keep). New parameters are drawn from their
+    priors (or take their fixed values); parameters and flows the new spec lacks are
+    dropped. The plan lists each.
+    """
+    import numpy as np
+
+    from filters import CompartmentalModel, FilterConfig, ParticleFilter, ParticleSet
+
+    from .streams import load_stream_model
+
+    _check_stream(config, stream_id)
+    owned = store is None
+    store = store if store is not None else build_checkpoint_store(config)
+    try:
+        s = next(x for x in config.streams if x.id == stream_id)
+        new_model = CompartmentalModel(load_stream_model(s), window_days=s.assimilation_window_days)
+        loaded = store.load_latest(stream_id, expected_fingerprint=None)
+        if loaded is None:
+            raise ServiceError(f"stream {stream_id!r} has no checkpoint to migrate; nothing was done")
+        cp = loaded.checkpoint
+        old_spec_name = cp.header.get("model")
+        old_fp = cp.header["filter"]["model_fingerprint"]
+        if old_fp == new_model.fingerprint():
+            raise ServiceError(f"stream {stream_id!r} already runs model fingerprint {old_fp}; nothing to migrate")
+        old_spec = cp.header.get("spec")
+        if old_spec is None:
+            raise ServiceError(
+                f"the checkpoint of {stream_id!r} does not carry the spec it was written with (written before migrations "
+                "were possible): rebuild the stream under the new spec instead (runbook: Upgrading a model spec)"
+            )
+        from schemas import ModelSpec
+
+        old_model = CompartmentalModel(ModelSpec.model_validate(old_spec), window_days=cp.header.get("window_days"))
+        problems = []
+        if sorted(old_model.compartments) != sorted(new_model.compartments):
+            problems.append(f"compartments differ: {old_model.compartments} -> {new_model.compartments}")
+        if sorted(old_model.groups) != sorted(new_model.groups):
+            problems.append(f"groups differ: {old_model.groups} -> {new_model.groups}")
+        old_params, new_params = old_model.param_names, new_model.param_names
+        old_flows = {old_model.spec.flows[f].name: k for k, f in enumerate(old_model._observed_flows)}
+        new_flows = {new_model.spec.flows[f].name: k for k, f in enumerate(new_model._observed_flows)}
+        plan: dict[str, Any] = {
+            "stream": stream_id,
+            "from": {"model": old_spec_name, "fingerprint": old_fp},
+            "to": {"model": new_model.spec.name, "fingerprint": new_model.fingerprint()},
+            "parameters": {
+                "kept": [p for p in new_params if p in old_params],
+                "new (drawn from the prior or fixed)": [p for p in new_params if p not in old_params],
+                "dropped": [p for p in old_params if p not in new_params],
+            },
+            "observed flows": {
+                "kept": [f for f in new_flows if f in old_flows],
+                "new (history starts empty)": [f for f in new_flows if f not in old_flows],
+                "dropped": [f for f in old_flows if f not in new_flows],
+            },
+            "refused": problems,
+        }
+        if problems:
+            raise ServiceError("the stream's cloud does not map onto the new spec: " + "; ".join(problems))
+        if dry_run:
+            return plan
+        arrays = {k: np.asarray(v) for k, v in cp.arrays.items()}
+        n = arrays["states"].shape[0]
+        c_old = [old_model.compartments.index(c) for c in new_model.compartments]
+        g_old = [old_model.groups.index(g) for g in new_model.groups]
+        states = arrays["states"][:, g_old][:, :, c_old]
+        header = cp.header["filter"]
+        from filters import restore_generator
+
+        rng = restore_generator(header["rng"])
+        fresh = new_model.initial(n, rng)  # priors for new parameters (drawn with the stream's generator)
+        params = fresh.params
+        for j, name in enumerate(new_params):
+            if name in old_params:
+                params[:, j] = arrays["params"][:, old_params.index(name)]
+        history = np.zeros((n, new_model.history_days, len(new_flows), new_model.n_groups), dtype=np.int64)
+        days = min(history.shape[1], arrays["history"].shape[1])
+        for name, k in new_flows.items():
+            if name in old_flows:
+                history[:, :days, k, :] = arrays["history"][:, :days, old_flows[name], :][:, :, g_old]
+        particles = ParticleSet(states=states, params=params, history=history, log_weights=arrays["log_weights"])
+        registry = StreamRegistry(config, store)
+        runtime = registry.from_prior(stream_id)
+        filter_config = FilterConfig(**{**header["config"], "summary_probs": tuple(header["config"]["summary_probs"])})
+        evidence = header["log_evidence"]
+        pf = ParticleFilter(
+            new_model, filter_config, rng, particles=particles, time=header["time"], step_count=header["step"],
+            log_evidence=float("-inf") if evidence is None else evidence,
+        )
+        if "lineage" in arrays and arrays["lineage"].shape == pf.lineage.shape:
+            pf.lineage = arrays["lineage"].astype(np.int32)
+        runtime.filter, runtime.model = pf, new_model
+        for key in ("last_day", "last_period"):
+            setattr(runtime, key, cp.header.get(key))
+        runtime.positions = {k: int(v) for k, v in cp.header.get("positions", {}).items()}
+        runtime.known = {
+            series: {int(d): (float(tot), None if a is None else int(a)) for d, (tot, a) in ds.items()}
+            for series, ds in cp.header.get("known", {}).items()
+            if series in {x.name for x in new_model.series}
+        }
+        runtime.operations = [*cp.header.get("operations", []), {"action": "migrate", **{k: plan[k] for k in ("from", "to")}, "at": _now()}]
+        info = store.write(runtime.to_checkpoint())
+        plan["written"] = str(info.path)
+        return plan
+    finally:
+        close = getattr(store, "close", None)
+        if owned and close is not None:
+            close()
+
+
 # -------------------------------------------------------------------- command
 def cmd_stream(args: argparse.Namespace) -> int:
     config = load_config(args.config)
@@ -277,7 +461,15 @@ def cmd_stream(args: argparse.Namespace) -> int:
                     file=sys.stderr,
                 )
         else:
-            plan = reset_stream(config, args.stream, archive=Path(args.archive) if args.archive else None, dry_run=args.dry_run)
+            if args.action == "reset":
+                plan = reset_stream(config, args.stream, archive=Path(args.archive) if args.archive else None, dry_run=args.dry_run)
+            elif args.action == "resize":
+                if args.particles is None:
+                    print("casecloud: stream resize needs --particles N", file=sys.stderr)
+                    return 2
+                plan = resize_stream(config, args.stream, args.particles, dry_run=args.dry_run)
+            else:
+                plan = migrate_stream(config, args.stream, dry_run=args.dry_run)
             print(orjson.dumps(plan, option=orjson.OPT_INDENT_2).decode())
             if args.dry_run:
                 print("dry run: nothing was moved or written", file=sys.stderr)
@@ -290,16 +482,20 @@ def cmd_stream(args: argparse.Namespace) -> int:
 def add_stream_parser(sub) -> None:
     p = sub.add_parser(
         "stream",
-        help="operator actions on a stream's saved state: rebuild it from its history, or reset it to the prior",
+        help="operator actions on a stream's saved state: rebuild, reset, resize, migrate",
         description="rebuild: replay the stream's records from the input (or a history CSV) into a checkpoint the "
         "running service resumes from. reset: archive the stream's checkpoints and start it from the prior with "
-        "the next new record. Stop the service first unless the stream is held for lost state.",
+        "the next new record. resize: change its particle count (a weighted draw from the cloud). migrate: move "
+        "its cloud to the model spec the config now names, where compartments, groups and parameters map (the "
+        "dry run lists what maps, what is new and what is dropped). Stop the service first unless the stream is "
+        "held for lost state.",
     )
-    p.add_argument("action", choices=["rebuild", "reset"])
+    p.add_argument("action", choices=["rebuild", "reset", "resize", "migrate"])
     p.add_argument("--config", required=True, help="deployment config TOML (its checkpoint store and input are used)")
     p.add_argument("--stream", required=True, help="the stream id")
     p.add_argument("--history", help="rebuild: replay this history CSV instead of the input")
     p.add_argument("--out", help="rebuild: also write the replayed estimates, alerts and dead letters here (NDJSON)")
     p.add_argument("--archive", help="reset: where to move the checkpoints (default: <checkpoint_dir>-archive/)")
+    p.add_argument("--particles", type=int, help="resize: the new particle count")
     p.add_argument("--dry-run", action="store_true", help="say what would be done; change nothing")
     p.set_defaults(handler=cmd_stream)

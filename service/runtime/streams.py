@@ -70,6 +70,9 @@ class StreamRuntime:
             header={
                 "filter": header,
                 "model": self.model.spec.name,
+                # what the particles mean, so an operator can later move them to a revised spec
+                "spec": self.model.spec.model_dump(mode="json", by_alias=True),
+                "window_days": getattr(self.model, "window_days", None),
                 "last_day": self.last_day,
                 "last_period": self.last_period,
                 "positions": dict(self.positions),

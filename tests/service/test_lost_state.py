@@ -199,3 +199,70 @@ def test_config_that_differs_from_the_checkpoint_is_reported(tmp_path, caplog):
     assert get("casecloud_stream_config_ignored", {"stream": STREAM, "key": "scheme"}) == 1.0
     assert get("casecloud_stream_config_ignored", {"stream": STREAM, "key": "resample_threshold"}) is None
     assert site.cloud().arrays["log_weights"].shape == (200,)  # the checkpoint's cloud was kept
+
+
+def test_resize_draws_the_new_cloud_from_the_weighted_old_one(tmp_path):
+    # Bugs caught: a resize that keeps the old count in the filter config (the next load fails
+    # or the config report lies), or that ignores the weights (a uniform subset).
+    from service.runtime.recovery import resize_stream
+
+    site = Site(tmp_path / "site")
+    site.append(range(1, 11))
+    site.serve()
+    before = site.cloud()
+    plan = resize_stream(site.config, STREAM, 500, dry_run=True)
+    assert plan["particles"] == [200, 500] and site.cloud().header["filter"]["step"] == before.header["filter"]["step"]
+    resize_stream(site.config, STREAM, 500)
+    after = site.cloud()
+    assert after.arrays["states"].shape[0] == 500 and after.header["filter"]["config"]["n_particles"] == 500
+    assert after.header["operations"][-1]["action"] == "resize"
+    # every new particle is a copy of an old one, and heavier old particles are copied more often
+    old = {row.tobytes(): w for row, w in zip(before.arrays["states"], np.exp(before.arrays["log_weights"]))}
+    assert all(row.tobytes() in old for row in after.arrays["states"])
+    assert np.all(after.arrays["log_weights"] == 0.0)
+    changed = site.config.model_dump()
+    changed["streams"][0]["particles"] = 500
+    site.config = DeploymentConfig.model_validate(changed)
+    site.append(range(11, 13))
+    assert site.serve()["applied"] == 2 and site.cloud().arrays["states"].shape[0] == 500
+
+
+def test_migrate_moves_the_cloud_where_the_spec_maps_and_refuses_where_it_does_not(tmp_path):
+    # Bug caught: a migration that silently re-initialises what it cannot map, or maps
+    # compartments by position instead of by name.
+    from schemas import example_model_path
+    from service.errors import ServiceError
+    from service.runtime.recovery import migrate_stream
+
+    site = Site(tmp_path / "site")
+    site.append(range(1, 11))
+    site.serve()
+    before = site.cloud()
+    # a revised sir: the same compartments, one parameter renamed (gamma -> recovery)
+    text = example_model_path("sir").read_text(encoding="utf-8")
+    assert "gamma" in text
+    revised = tmp_path / "sir_revised.toml"
+    revised.write_text(text.replace('name = "sir"', 'name = "sir_revised"').replace("gamma", "recovery"), encoding="utf-8")
+    changed = site.config.model_dump()
+    changed["streams"][0]["model"] = str(revised)
+    site.config = DeploymentConfig.model_validate(changed)
+    plan = migrate_stream(site.config, STREAM, dry_run=True)
+    assert "recovery" in plan["parameters"]["new (drawn from the prior or fixed)"] and plan["parameters"]["dropped"] == ["gamma"]
+    assert plan["refused"] == []
+    migrate_stream(site.config, STREAM)
+    after = site.cloud()
+    np.testing.assert_array_equal(after.arrays["states"], before.arrays["states"])
+    assert after.header["model"] == "sir_revised" and after.header["operations"][-1]["action"] == "migrate"
+    site.append(range(11, 13))
+    assert site.serve()["applied"] == 2
+
+    # another compartment set does not map: refused, nothing written
+    seir = DeploymentConfig.model_validate({**changed, "streams": [{**changed["streams"][0], "model": "seir"}]})
+    steps = sorted(p.name for p in site.checkpoints.rglob("*.ckpt"))
+    try:
+        migrate_stream(seir, STREAM)
+    except ServiceError as exc:
+        assert "compartments differ" in str(exc)
+    else:
+        raise AssertionError("a migration across compartment sets must be refused")
+    assert sorted(p.name for p in site.checkpoints.rglob("*.ckpt")) == steps
