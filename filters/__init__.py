@@ -4,7 +4,7 @@ Pure numpy/scipy: no I/O, no asyncio, no Kafka. Every random draw goes
 through a ``numpy.random.Generator`` that is passed in.
 """
 
-from ._compartmental import CompartmentalModel, ModelError
+from ._compartmental import CompartmentalModel, ModelError, ModelGuardError
 from ._expressions import ExpressionError, compile_expression
 from ._forecast import FORECAST_LEVELS, FirstExceedance, Forecast, forecast
 from ._filter import FilterConfig, ParticleFilter, StepResult
@@ -100,6 +100,7 @@ __all__ = [
     "build_population",
     "Model",
     "ModelError",
+    "ModelGuardError",
     "Observation",
     "ObservationError",
     "ParticleFilter",

@@ -17,16 +17,15 @@ import numpy as np
 from schemas import ModelSpec
 
 from ._expressions import CompiledExpression, ExpressionError, compile_expression
+from ._model import ModelError, ModelGuardError, first_bad
 from ._particles import ParticleSet
 from ._priors import from_unconstrained, sample_prior, to_unconstrained
 from ._reports import ReportingCdfTable
 from ._series import ObservedSeries, compile_series, mask_groups
 
-__all__ = ["CompartmentalModel", "ModelError"]
+__all__ = ["CompartmentalModel", "ModelError", "ModelGuardError"]
 
 
-class ModelError(ValueError):
-    """A model spec compiles to something that cannot run."""
 
 
 def _expand(value: np.ndarray | float, shape: tuple[int, int]) -> np.ndarray:
@@ -323,7 +322,8 @@ class CompartmentalModel(ObservedSeries):
         env: dict[str, np.ndarray | float] = {name: params[:, j, None] for j, name in enumerate(self.param_names)}
         env["t"] = float(t)
         for name, expr in self._derived:
-            env[name] = np.broadcast_to(np.asarray(expr(env), dtype=float), (params.shape[0], 1))
+            with np.errstate(all="ignore"):  # a bad value shows up in the rates that read it, where the guard names it
+                env[name] = np.broadcast_to(np.asarray(expr(env), dtype=float), (params.shape[0], 1))
         return env
 
     def _rate_env(self, scalars: dict, counts: np.ndarray, t: float) -> dict:
@@ -442,21 +442,37 @@ class CompartmentalModel(ObservedSeries):
         return env
 
     def _rate(self, f: int, env: dict, n: int) -> np.ndarray:
-        r = np.asarray(self._flow_rates[f](env), dtype=float)
-        # Negative or undefined rates (e.g. from sin or 0/0) mean "no flow".
-        clipped = np.where(r > 0, r, 0.0)
-        if clipped.shape != (n, self.n_groups):
-            clipped = _expand(clipped, (n, self.n_groups))
-        return clipped
+        with np.errstate(all="ignore"):  # a NaN or infinity is reported by the guard, not as a warning
+            r = np.asarray(self._flow_rates[f](env), dtype=float)
+        self._guard_rate(f, r, env, n)
+        if r.shape != (n, self.n_groups):
+            r = _expand(r, (n, self.n_groups))
+        return r
 
     def _rates(self, env: dict, n: int) -> list[np.ndarray]:
         shape = (n, self.n_groups)
         out = []
-        for expr in self._flow_rates:
-            r = np.broadcast_to(np.asarray(expr(env), dtype=float), shape)
-            # Negative or undefined rates (e.g. from sin or 0/0) mean "no flow".
-            out.append(np.where(r > 0, r, 0.0))
+        for f, expr in enumerate(self._flow_rates):
+            with np.errstate(all="ignore"):  # a NaN or infinity is reported by the guard, not as a warning
+                r = np.broadcast_to(np.asarray(expr(env), dtype=float), shape)
+            self._guard_rate(f, r, env, n)
+            out.append(r)
         return out
+
+    def _guard_rate(self, f: int, r: np.ndarray, env: dict, n: int) -> None:
+        """A rate must be finite and >= 0 for every particle and group (a spec error otherwise)."""
+        where = first_bad(r)
+        if where is None:
+            return
+        full = np.broadcast_to(r, (n, self.n_groups))
+        i, g = first_bad(full)  # type: ignore[misc]
+        flow = self.spec.flows[f]
+        day = float(env.get("t", float("nan")))
+        values = {name: float(np.broadcast_to(env[name], (n, self.n_groups))[i, g]) for name in self.param_names if name in env}
+        raise ModelGuardError(
+            f"model {self.spec.name!r}: the rate of flow {flow.name!r} ({flow.rate!r}) is {float(full[i, g])!r} for group "
+            f"{self.groups[g]!r} on day {day:g} (particle {i}: {values}); rates must be finite and >= 0"
+        )
 
     def advance(
         self, particles: ParticleSet, t0: int, t1: int, rng: np.random.Generator, effects: Any = None

@@ -14,7 +14,36 @@ import numpy as np
 from ._observation import Observation
 from ._particles import ParticleSet
 
-__all__ = ["Model"]
+__all__ = ["Model", "ModelError", "ModelGuardError", "first_bad"]
+
+
+class ModelError(ValueError):
+    """A model spec compiles to something that cannot run."""
+
+
+class ModelGuardError(ModelError):
+    """A rate or observation quantity of the model came out NaN, negative or infinite at run time.
+
+    The message names the expression, the flow or series, the group, the day and
+    the parameter values of one offending particle.
+    """
+
+
+def first_bad(values: np.ndarray, allow_zero: bool = True, upper: float | None = None) -> tuple[int, ...] | None:
+    """Index of the first entry that is NaN, infinite, negative (or zero when not
+    ``allow_zero``) or above ``upper``; None when every entry is fine. Two reductions
+    on the fast path."""
+    values = np.asarray(values, dtype=float)
+    if values.size == 0:
+        return None
+    lo, hi = values.min(), values.max()
+    ok = (lo >= 0 if allow_zero else lo > 0) and np.isfinite(hi) and (upper is None or hi <= upper)
+    if ok:
+        return None
+    bad = ~np.isfinite(values) | (values < 0 if allow_zero else values <= 0)
+    if upper is not None:
+        bad |= values > upper
+    return tuple(int(i) for i in np.argwhere(bad)[0])
 
 
 @runtime_checkable

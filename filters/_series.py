@@ -31,6 +31,7 @@ from ._observation import (
     delay_kernel,
     poisson_loglik,
 )
+from ._model import ModelGuardError, first_bad
 from ._particles import ParticleSet
 from ._reports import Report, ReportingCdfTable, reporting_cdf
 
@@ -163,6 +164,25 @@ class ObservedSeries:
     def _column(self, params: np.ndarray, col: int | None, const: float) -> np.ndarray | float:
         return params[:, col] if col is not None else const
 
+    def _guard_series(self, particles: ParticleSet, s: _CompiledSeries) -> None:
+        """A reporting fraction taken from a parameter must lie in [0, 1], a dispersion be > 0
+        and finite, for every particle (a prior that allows otherwise is a spec error)."""
+        checks = []
+        if s.reporting_param is not None:
+            checks.append(("reporting fraction", s.reporting_param, True, 1.0, "in [0, 1]"))
+        if s.noise == "negbin" and s.dispersion_param is not None:
+            checks.append(("dispersion", s.dispersion_param, False, None, "finite and > 0"))
+        for what, col, allow_zero, upper, allowed in checks:
+            values = particles.params[:, col]
+            where = first_bad(values, allow_zero=allow_zero, upper=upper)
+            if where is not None:
+                i = where[0]
+                given = {name: float(particles.params[i, j]) for j, name in enumerate(self.param_names)}
+                raise ModelGuardError(
+                    f"model {self.spec.name!r}: series {s.name!r} has {what} {self.param_names[col]!r} = {float(values[i])!r} "
+                    f"(particle {i}: {given}); it must be {allowed}"
+                )
+
     def expected(self, particles: ParticleSet, series: str) -> np.ndarray:
         """Expected reported count (incidence) or true size (prevalence) per particle."""
         s = self._series_by_name[series]
@@ -202,6 +222,7 @@ class ObservedSeries:
         size_terms: dict = {}  # negative-binomial size terms, shared by series with one size
         for name, y in observation.present().items():
             s = self._series_by_name[name]
+            self._guard_series(particles, s)
             y = float(y)
             if s.noise == "binomial":
                 rho = self._column(particles.params, s.reporting_param, s.reporting)
@@ -296,6 +317,7 @@ class ObservedSeries:
         """
         self.check_report(report, now)
         s = self._series_by_name[report.series]
+        self._guard_series(particles, s)
         y = report.increment
         if s.noise == "binomial":
             rho = self._column(particles.params, s.reporting_param, s.reporting)
@@ -319,6 +341,7 @@ class ObservedSeries:
         """Draw one set of reported counts per particle from the observation model."""
         out = {}
         for s in self.series:
+            self._guard_series(particles, s)
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             if s.noise == "binomial":
                 out[s.name] = rng.binomial(self._trials(particles, s), rho)

@@ -325,6 +325,7 @@ class DeadLetter(_Message):
         "not_revisable",
         "conflicting_vintage",
         "needs_recovery",
+        "model_error",
     ]
     message: str
     stream: str | None = None

@@ -56,9 +56,14 @@ class Service:
         """Ready when connected and no stream is held for lost state (the reason when not)."""
         if not self.ready:
             return False, "not ready: starting or stopping"
-        held = self.registry.held()
-        if held:
-            return False, f"not ready: streams held for lost state: {', '.join(held)}"
+        held, broken = self.registry.held(), self.registry.broken()
+        if held or broken:
+            parts = []
+            if held:
+                parts.append(f"streams held for lost state: {', '.join(held)}")
+            if broken:
+                parts.append(f"streams stopped on a model error: {', '.join(broken)}")
+            return False, "not ready: " + "; ".join(parts)
         return True, "ready"
 
     async def _on_assign(self, assigned: Sequence[tuple[str, int]]):

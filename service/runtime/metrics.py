@@ -71,6 +71,9 @@ class Metrics:
         self.needs_recovery = Gauge(
             "casecloud_stream_needs_recovery", "1 while a stream that lost its state is held for an operator", ["stream"], registry=r
         )
+        self.model_errors = Gauge(
+            "casecloud_stream_model_error", "1 while a stream is stopped on a model error (its records are kept as dead letters)", ["stream"], registry=r
+        )
         self.config_ignored = Gauge(
             "casecloud_stream_config_ignored",
             "1 where a filter setting in the config differs from the stream's checkpoint (the checkpoint's is used)",

@@ -21,7 +21,7 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
-from filters import Observation, ObservationError, Report, forecast, nowcast
+from filters import ModelGuardError, Observation, ObservationError, Report, forecast, nowcast
 from schemas import (
     AlertMessage,
     DeadLetter,
@@ -159,6 +159,13 @@ class RecordProcessor:
         """
         try:
             message, runtime = self._validate(record)
+            if runtime.broken is not None:
+                raise _Reject(
+                    "model_error",
+                    f"stream {runtime.id!r} is stopped on a model error until its spec is fixed and the service "
+                    f"restarted: {runtime.broken}",
+                    runtime.id,
+                )
             if runtime.fresh or runtime.held is not None:
                 runtime = await self._guard_lost_state(runtime, record)
         except _Reject as rej:
@@ -179,7 +186,15 @@ class RecordProcessor:
             return Outcome("skipped", reason, runtime.id)
         for r in plan.skipped:
             self.metrics.skipped.labels(runtime.id, r).inc()
-        outputs = await self._apply(runtime, message, plan, record)
+        try:
+            outputs = await self._apply(runtime, message, plan, record)
+        except ModelGuardError as exc:
+            # The spec cannot run on this cloud: publish nothing, keep the records, wait for a fixed spec.
+            runtime.broken = str(exc)
+            self.metrics.model_errors.labels(runtime.id).set(1)
+            log.error("stream %s stopped on a model error: %s", runtime.id, exc)
+            rej = _Reject("model_error", f"stream {runtime.id!r} stopped on a model error: {exc}", runtime.id)
+            return await self._dead_letter(record, rej, publish)
         started = time.perf_counter()
         await publish(outputs)
         self.metrics.publish_seconds.observe(time.perf_counter() - started)

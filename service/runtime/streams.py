@@ -54,6 +54,7 @@ class StreamRuntime:
     fresh: bool = False
     held: str | None = None
     operations: list[dict] = field(default_factory=list)  # operator actions (rebuild, reset), oldest first
+    broken: str | None = None  # a model error stopped the stream (in memory only: a restart with a fixed spec clears it)
 
     @property
     def id(self) -> str:
@@ -185,6 +186,10 @@ class StreamRegistry:
     def held(self) -> list[str]:
         """Streams whose records are held back until an operator restores their state."""
         return sorted(sid for sid, r in self.runtimes.items() if r.held is not None)
+
+    def broken(self) -> list[str]:
+        """Streams stopped on a model error (NaN, negative or infinite rates and the like)."""
+        return sorted(sid for sid, r in self.runtimes.items() if r.broken is not None)
 
     def _report_config_drift(self, stream_id: str, saved: FilterConfig) -> None:
         """Filter settings in the config that differ from the checkpoint's: the checkpoint's
