@@ -712,6 +712,21 @@ class CompartmentalModel(ObservedSeries):
 
 
     # -------------------------------------------------------------- summaries
+    def flow_rates(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
+        """Per-capita rate of every flow at time ``t`` from the particles' current counts,
+        ``{flow: ndarray of shape (n_particles, n_groups)}``; a bad rate raises ModelGuardError."""
+        n = particles.size
+        env = self._rate_env(self._scalars(particles.params, t), particles.states, t)
+        return {f.name: np.broadcast_to(self._rate(i, env, n), (n, self.n_groups)).copy() for i, f in enumerate(self.spec.flows)}
+
+    def basic_reproduction_number(self, particles: ParticleSet, t: float = 0.0) -> np.ndarray:
+        """R0 per particle: the next-generation number with every person in the remainder
+        compartment (the susceptibles, in every shipped spec) and the particles' parameters."""
+        counts = np.zeros_like(particles.states)
+        counts[:, :, self._cidx[self.spec.initial.remainder]] = self.population
+        naive = ParticleSet(states=counts, params=particles.params, history=particles.history[:, :0])
+        return self.reproduction_number(naive, t)
+
     def reproduction_number(self, particles: ParticleSet, t: float = 0.0, today: Any = None) -> np.ndarray:
         """Effective reproduction number per particle from the next-generation matrix
         (van den Driessche & Watmough 2002), at the particles' current susceptibles.

@@ -24,10 +24,12 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 def build_parser() -> argparse.ArgumentParser:
     from .analysis.backtest import add_backtest_parser
     from .analysis.calibrate import add_calibrate_parser
+    from .analysis.check import add_check_parser
     from .analysis.demo import add_demo_parser
     from .analysis.report import add_report_parser
     from .analysis.scenario import add_scenario_parser
     from .bench.command import add_bench_parser
+    from .broker import add_broker_parser
     from .runtime.commands import add_runtime_parsers, add_schemas_parser
     from .runtime.recovery import add_stream_parser
     from .state.commands import add_checkpoint_parser
@@ -44,10 +46,12 @@ def build_parser() -> argparse.ArgumentParser:
     add_stream_parser(sub)
     add_schemas_parser(sub)
     add_scenario_parser(sub)
+    add_check_parser(sub)
     add_calibrate_parser(sub)
     add_report_parser(sub)
     add_backtest_parser(sub)
     add_bench_parser(sub)
+    add_broker_parser(sub)
     return parser
 
 
@@ -60,7 +64,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         stream=sys.stderr,
     )
     handler: Callable[[argparse.Namespace], int] = args.handler
-    return handler(args)
+    try:
+        return handler(args)
+    except BrokenPipeError:
+        # The reader went away (e.g. `| head`): stop quietly, as command-line tools do.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":
