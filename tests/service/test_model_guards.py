@@ -88,3 +88,23 @@ def test_calibrate_refuses_a_spec_with_a_bad_rate(tmp_path, capsys):
     err = capsys.readouterr().err
     assert code != 0
     assert "flow 'recovery'" in err and "'gamma * log(t - 5)'" in err and "is nan" in err
+
+
+def test_over_the_file_transport_nothing_is_published_for_a_broken_spec(tmp_path, capsys):
+    # The same guard through `casecloud replay` (file transport, a real process's code path).
+    from service.cli import main
+
+    bad_spec = tmp_path / "sir_typo.toml"
+    text = example_model_path("sir").read_text(encoding="utf-8")
+    bad_spec.write_text(text.replace('rate = "gamma"', 'rate = "-gamma"'), encoding="utf-8")
+    (tmp_path / "feed.ndjson").write_bytes(b"".join(obs("typo", d) + b"\n" for d in range(1, 6)))
+    (tmp_path / "deploy.toml").write_text(
+        f'[service]\ncheckpoint_dir = "ckpt"\n[metrics]\nenabled = false\n'
+        f'[[streams]]\nid = "typo"\nmodel = "{bad_spec}"\nstart = "{START.isoformat()}"\nparticles = 50\nforecast_trajectories = 10\n'
+    )
+    code = main(["replay", "--config", str(tmp_path / "deploy.toml"), "--input", str(tmp_path / "feed.ndjson"), "--out", str(tmp_path / "out")])
+    assert code == 0
+    assert (tmp_path / "out" / "estimates.ndjson").read_bytes() == b""
+    letters = [orjson.loads(x) for x in (tmp_path / "out" / "dead_letters.ndjson").read_bytes().splitlines()]
+    assert [x["reason"] for x in letters] == ["model_error"] * 5
+    assert "is -0.25" in letters[0]["message"] and "'-gamma'" in letters[0]["message"]
