@@ -63,8 +63,9 @@ def nowcast(
                 remaining = np.zeros(particles.size)
                 expected_pending = 0.0
             else:
-                remaining = model.sample_increment(particles, pending, now, rng).astype(float)
-                expected_pending = float(weights @ model.report_mean(particles, pending, now))
+                mu = model.report_mean(particles, pending, now)
+                remaining = model.sample_increment(particles, pending, now, rng, mean=mu).astype(float)
+                expected_pending = float(weights @ mu)
             eventual = total + remaining
             mean = float(total + weights @ remaining)
             q = weighted_quantiles(eventual, weights, probs_arr)

@@ -104,10 +104,12 @@ class ReportingCdfTable:
         self._x0 = math.log(self.LOW)
         self._step = (math.log(self.HIGH) - self._x0) / (self.GRID - 1)
 
-    def __call__(self, values: np.ndarray) -> np.ndarray:
-        """F(k) for k = 0..max_days at each particle's value, shape (n, max_days + 1)."""
+    def __call__(self, values: np.ndarray, days: np.ndarray | None = None) -> np.ndarray:
+        """F(k) at each particle's value for k in ``days`` (default 0..max_days),
+        shape (n, len(days)); asking only for the days needed gathers less."""
         pos = (np.log(np.clip(values, self.LOW, self.HIGH)) - self._x0) / self._step
         lower = np.minimum(pos.astype(np.intp), self.GRID - 2)
         frac = (pos - lower)[:, None]
-        return self.table[lower] * (1.0 - frac) + self.table[lower + 1] * frac
+        table = self.table if days is None else self.table[:, days]
+        return table[lower] * (1.0 - frac) + table[lower + 1] * frac
 

@@ -275,13 +275,15 @@ class ObservedSeries:
         if as_of is None:
             return np.ones((1, days))
         dist, (mean, mean_p), (sd, sd_p), max_days = s.rdelay  # type: ignore[misc]
+        elapsed = as_of - (time - np.arange(days))  # days since each event day
+        columns = np.clip(elapsed, 0, max_days)
         if (mean_p is None) != (sd_p is None):  # one of them varies by particle: interpolate a table
             table = self._cdf_tables.get(s.name)
             if table is None:
                 table = self._cdf_tables[s.name] = ReportingCdfTable(
                     dist, None if mean_p is not None else mean, None if sd_p is not None else sd, max_days
                 )
-            cdf = table(particles.params[:, mean_p if mean_p is not None else sd_p])
+            share = table(particles.params[:, mean_p if mean_p is not None else sd_p], columns)
         else:
             cdf = reporting_cdf(
                 dist,
@@ -289,8 +291,7 @@ class ObservedSeries:
                 particles.params[:, sd_p] if sd_p is not None else sd,
                 max_days,
             )
-        elapsed = as_of - (time - np.arange(days))  # days since each event day
-        share = cdf[:, np.clip(elapsed, 0, max_days)]
+            share = cdf[:, columns]
         share[:, elapsed < 0] = 0.0
         return share
 
@@ -328,10 +329,13 @@ class ObservedSeries:
         k = self._column(particles.params, s.dispersion_param, s.dispersion)
         return _negbin_loglik(y, mu, _negbin_size_terms(k))
 
-    def sample_increment(self, particles: ParticleSet, report: Report, now: int, rng: np.random.Generator) -> np.ndarray:
-        """Draw the increment a report would carry, per particle (for nowcasts: the reports still to come)."""
+    def sample_increment(
+        self, particles: ParticleSet, report: Report, now: int, rng: np.random.Generator, mean: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Draw the increment a report would carry, per particle (for nowcasts: the reports still to come);
+        ``mean``: :meth:`report_mean` of the same report, when the caller has it already."""
         s = self._series_by_name[report.series]
-        mu = self.report_mean(particles, report, now)
+        mu = self.report_mean(particles, report, now) if mean is None else mean
         if s.noise == "negbin":
             k = np.broadcast_to(self._column(particles.params, s.dispersion_param, s.dispersion), mu.shape)
             return rng.poisson(rng.gamma(k, np.where(mu > 0, mu, 0.0) / k))
