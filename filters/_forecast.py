@@ -42,6 +42,11 @@ Latent quantities (per trajectory and day)
     per day for 2000 trajectories, some 5% of a forecast's time, so it is
     taken every day).
 
+A model without infection flows that counts these itself (a method
+``latent_quantities(particles) -> {"infections", "susceptibles", "R_eff": (n,)}``,
+as the individual-based family does, with ``latent_source`` saying how) supplies
+them directly, read at the end of each day.
+
 Names: reported series are addressed by their series name; latent quantities
 as ``"latent.infections"``, ``"latent.susceptibles"`` and ``"latent.R_eff"``
 (series names are identifiers without dots, so the two never collide).
@@ -455,6 +460,11 @@ def forecast(
     reported = {name: np.empty((n, horizon), dtype=np.int64) for name in names}
     expected = {name: np.empty((n, horizon)) for name in names}
     latent: dict[str, np.ndarray] = {}
+    # A model without infection flows may count the latent quantities itself.
+    own = getattr(stepper, "latent_quantities", None) if not track.sources else None
+    if own is not None:
+        latent = {"infections": np.empty((n, horizon), dtype=np.int64), "susceptibles": np.empty((n, horizon), dtype=np.int64)}
+        latent["R_eff"] = np.empty((n, horizon))
     if track.sources:
         if track.slots:
             latent["infections"] = np.empty((n, horizon), dtype=np.int64)
@@ -471,7 +481,10 @@ def forecast(
         for name in names:
             reported[name][:, h - 1] = drawn[name]
             expected[name][:, h - 1] = stepper.expected(futures, name)
-        if "infections" in latent:
+        if own is not None:
+            for key, values in own(futures).items():
+                latent[key][:, h - 1] = values
+        if "infections" in latent and own is None:
             latent["infections"][:, h - 1] = futures.history[:, 0, track.slots, :].sum(axis=(1, 2))
         if track.sources:
             latent["susceptibles"][:, h - 1] = futures.states[:, :, track.sources].sum(axis=(1, 2))
@@ -490,5 +503,5 @@ def forecast(
         latent=latent,
         weekly_series=frozenset(s.name for s in model.series if getattr(s, "weekly", False)),
         ancestors=_read_only(index),
-        infections_source=track.source if "infections" in latent else "",
+        infections_source=(track.source if own is None else str(getattr(stepper, "latent_source", ""))) if "infections" in latent else "",
     )
