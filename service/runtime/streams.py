@@ -9,14 +9,18 @@ from pathlib import Path
 
 import numpy as np
 
-from filters import CompartmentalModel, FilterConfig, ParticleFilter, stream_generator
+from filters import CompartmentalModel, FilterConfig, IndividualModel, ParticleFilter, build_model, stream_generator
 from schemas import (
+    EXAMPLE_INDIVIDUAL_MODELS,
     DeploymentConfig,
+    IndividualModelSpec,
     ModelSpec,
     SpecError,
     StreamConfig,
+    example_individual_path,
     example_model_path,
     load_model_spec,
+    load_spec,
 )
 
 from ..errors import ConfigError
@@ -28,11 +32,15 @@ __all__ = ["StreamRuntime", "StreamRegistry", "load_stream_model"]
 log = logging.getLogger("casecloud.streams")
 
 
-def load_stream_model(stream: StreamConfig) -> ModelSpec:
-    """The stream's spec: a TOML path, or the name of a shipped example."""
+def load_stream_model(stream: StreamConfig) -> ModelSpec | IndividualModelSpec:
+    """The stream's spec: a TOML path (either model family, by the file's top-level
+    ``kind``), or the name of a shipped example."""
     source = stream.model
-    path = Path(source) if source.endswith(".toml") else example_model_path(source)
-    return load_model_spec(path)
+    if source.endswith(".toml"):
+        return load_spec(Path(source))
+    if source in EXAMPLE_INDIVIDUAL_MODELS:
+        return load_spec(example_individual_path(source))
+    return load_model_spec(example_model_path(source))
 
 
 @dataclass
@@ -40,7 +48,7 @@ class StreamRuntime:
     """Everything one stream carries from message to message."""
 
     config: StreamConfig
-    model: CompartmentalModel
+    model: CompartmentalModel | IndividualModel
     filter: ParticleFilter
     last_day: int | None = None
     last_period: str | None = None
@@ -103,10 +111,10 @@ class StreamRegistry:
         self.config = config
         self.store = store
         self.streams = {s.id: s for s in config.streams}
-        self.models: dict[str, CompartmentalModel] = {}
+        self.models: dict[str, CompartmentalModel | IndividualModel] = {}
         for s in config.streams:
             try:
-                self.models[s.id] = CompartmentalModel(load_stream_model(s), window_days=s.assimilation_window_days)
+                self.models[s.id] = build_model(load_stream_model(s), window_days=s.assimilation_window_days)
             except (SpecError, ValueError) as exc:
                 raise ConfigError(f"stream {s.id!r}: model {s.model!r} is unusable: {exc}", stream=s.id) from exc
             names = {series.name for series in self.models[s.id].series}
