@@ -534,6 +534,17 @@ class IndividualModel(ObservedSeries):
         with np.errstate(divide="ignore", invalid="ignore"):
             return np.where(person_days > 0, caused / person_days * lifetime, np.nan)
 
+    latent_source = "infections counted person by person (all bands, imported included)"
+
+    def latent_quantities(self, particles: ParticleSet) -> dict[str, np.ndarray]:
+        """The day's infections, the susceptibles at its end and R_eff, per particle (read by forecasts)."""
+        h = particles.history
+        return {
+            "infections": h[:, 0, self._slot["infection"]].sum(axis=1),
+            "susceptibles": h[:, 0, self._slot["stock.S"]].sum(axis=1),
+            "R_eff": self.reproduction_number(particles),
+        }
+
     def stage_counts(self, particles: ParticleSet) -> np.ndarray:
         """(n, 4, bands) people susceptible, latent, infectious and recovered at the end of the cloud's day."""
         return particles.history[:, 0, self._stocks, :]

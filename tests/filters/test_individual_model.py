@@ -245,6 +245,24 @@ def test_r_eff_in_a_homogeneous_town_is_r0_times_the_susceptible_share():
     assert abs(ratio.mean() - 1) < tol, (ratio.mean(), tol)
 
 
+def test_r_eff_leaves_out_imported_infections():
+    """A town whose cases infect no one (every rate 0) but that keeps importing
+    infections has R_eff = 0 wherever someone was infectious. Bug caught: imported
+    infections counted as caused by the town's own cases."""
+    model = individual({
+        "population": town(5000, {"dist": "discrete", "values": [1, 2, 3], "weights": [1, 1, 1]}),
+        "transmission": {"importation": 40.0},
+        "disease": {"latent": {"dist": "discrete", "days": [1], "weights": [1]},
+                    "infectious": {"dist": "discrete", "days": [3], "weights": [1]}},
+    })
+    rng = gen(22)
+    ps = model.initial(50, rng)
+    model.advance(ps, 0, 12, rng)
+    reff = model.reproduction_number(ps)
+    assert np.isfinite(reff).all() and (reff == 0).all()
+    assert ps.history[:, :7, model._slot["infection.imported"]].sum() > 1000
+
+
 # ------------------------------------------------------------- bookkeeping
 @pytest.fixture(scope="module")
 def example():
