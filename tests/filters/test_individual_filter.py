@@ -1,0 +1,95 @@
+"""The particle filter with the individual-based model, on data simulated from it.
+
+External check: Bayesian calibration. When each truth is drawn from the prior
+and the data from the model, the posterior's central 90 % interval contains
+the truth with probability 0.9 (averaged over the prior), so over R
+independent replicates the number of hits is Binomial(R, 0.9) if the filter
+computes the posterior (Cook, Gelman & Rubin 2006, the calibration argument of
+simulation-based checks). The filter approximates it (finite particles,
+Liu-West jitter), so the band is that binomial's: hits >= R*0.9 - 3.5 sd
+(a correct posterior fails with probability below 1e-3), and not above R.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+import schemas
+from filters import FilterConfig, IndividualModel, ParticleFilter, simulate_season, weighted_quantiles
+from filters._individual import SUSCEPTIBLE
+
+MODEL = {
+    "kind": "individual",
+    "name": "calibration_town",
+    "population": {
+        "name": "calibration_town", "seed": 31, "size": 800,
+        "bands": [{"name": "child", "share": 0.25}, {"name": "adult", "share": 0.75}],
+        "households": {"size": {"dist": "discrete", "values": [1, 2, 3, 4], "weights": [0.3, 0.35, 0.2, 0.15]}, "head_bands": ["adult"]},
+        "settings": [{"name": "school", "size": 70, "members": {"child": 0.95}}],
+    },
+    "transmission": {"household": "beta_home", "community": "beta_community", "settings": {"school": "beta_school"}, "importation": 0.2},
+    "disease": {"latent": {"dist": "discrete", "days": [1, 2], "weights": [0.5, 0.5]},
+                "infectious": {"dist": "gamma", "mean": 3.0, "sd": 1.0, "max_days": 7}},
+    "parameters": {
+        "beta_home": {"kind": "static", "prior": {"dist": "lognormal", "mean_log": -1.0, "sd_log": 0.3}},
+        "beta_school": {"kind": "static", "prior": {"dist": "lognormal", "mean_log": -1.0, "sd_log": 0.3}},
+        "beta_community": {"kind": "static", "prior": {"dist": "lognormal", "mean_log": -1.0, "sd_log": 0.2}},
+    },
+    "initial": {"exposed": {"dist": "uniform", "low": 3, "high": 12}},
+    "series": [
+        {"name": "onsets_child", "kind": "incidence", "flow": "onset", "groups": ["child"], "reporting": 0.5, "noise": {"dist": "poisson"}},
+        {"name": "onsets_adult", "kind": "incidence", "flow": "onset", "groups": ["adult"], "reporting": 0.5, "noise": {"dist": "poisson"}},
+    ],
+}
+
+
+@pytest.mark.slow
+def test_posterior_intervals_cover_the_truth_at_their_nominal_rate():
+    """Bugs caught: a likelihood reading the wrong band or event (the posterior
+    concentrates away from the truth), Liu-West jitter on the wrong scale, or
+    resampling that gathers states and parameters with different indices (the
+    latent infections and the rates stop covering)."""
+    model = IndividualModel(schemas.validate_document(schemas.IndividualModelSpec, MODEL, "calibration"))
+    replicates, days, particles, level = 40, 30, 2000, 0.9
+    probs = np.array([(1 - level) / 2, (1 + level) / 2])
+    names = ["beta_home", "beta_school", "beta_community"]
+    hits = {name: 0 for name in [*names, "infected", "infectious"]}
+    widths: dict[str, list[float]] = {name: [] for name in hits}
+    truths: dict[str, list[float]] = {name: [] for name in hits}
+    for r in range(replicates):
+        rng = np.random.Generator(np.random.PCG64([2026, r]))
+        truth = simulate_season(model, days, rng)
+        true_state = truth.states[-1]
+        true_values = {
+            **{name: truth.params[-1, model.param_names.index(name)] for name in names},
+            "infected": int((true_state != SUSCEPTIBLE).sum()),
+            "infectious": int(((true_state >= 127) & (true_state < 253)).sum()),
+        }
+        pf = ParticleFilter(model, FilterConfig(n_particles=particles, liu_west_discount=0.98), rng)
+        for observation in truth.observations:
+            pf.step(observation, with_summary=False)
+        ps, w = pf.particles, pf.weights()
+        counts = model.stage_counts(ps).sum(axis=2)  # (n, 4): S, E, I, R
+        values = {
+            **{name: ps.params[:, model.param_names.index(name)] for name in names},
+            "infected": model.people - counts[:, 0],
+            "infectious": counts[:, 2],
+        }
+        for name, draws in values.items():
+            truths[name].append(true_values[name])
+            low, high = weighted_quantiles(np.asarray(draws, float), w, probs)
+            hits[name] += bool(low <= true_values[name] <= high)
+            widths[name].append(high - low)
+    sd = math.sqrt(replicates * level * (1 - level))
+    floor = replicates * level - 3.5 * sd
+    print({name: f"{h}/{replicates}" for name, h in hits.items()})
+    for name, h in hits.items():
+        assert floor <= h <= replicates, (name, h, floor)
+    # Sharpness: the data say something. Intervals are narrower than the spread of the
+    # truths drawn from the prior (a filter that ignored the data would cover by being wide).
+    for name in hits:
+        spread = np.subtract(*np.quantile(truths[name], [0.95, 0.05]))
+        assert np.median(widths[name]) < spread, (name, np.median(widths[name]), spread)
