@@ -1,19 +1,36 @@
 """``casecloud demo``: a made-up season in the fictional Brackenford district.
 
-A hidden "true" epidemic is simulated from the two-band SEIR example; its
-daily emergency-department visit counts (children, adults) are written as an
-NDJSON feed and streamed day by day through the same service code the Kafka
-deployment uses, over the file transport. The service is stopped part-way and
-restarted, resuming from its checkpoints without replaying history. The demo
-ends with a short comparison of the estimates against the hidden truth.
+A hidden "true" epidemic is simulated from the two-band SEIR example. Two
+invented feeds report on it into one stream, which runs the
+``seir_two_band_lab`` spec (the same epidemic model, observed by both feeds):
+
+* the ED feed: daily emergency-department visits per band (children,
+  adults), final on arrival; on Sundays the children's and the adults'
+  departments send their counts as separate messages (two feeds);
+* the lab feed: weekly lab-confirmed positives by specimen date (ISO weeks).
+  Reports of a week's specimens keep arriving for up to three weeks, so the
+  lab sends each recent week's total *as of* its report day every Monday:
+  first low, then revised upward (three vintages a week).
+
+The messages are written as an NDJSON feed, with a few mistakes slipped in,
+and streamed through the same service code the Kafka deployment uses, over
+the file transport. The service is stopped part-way and restarted, resuming
+from its checkpoints without replaying history. The demo ends with a short
+comparison of the estimates against the hidden truth, including the nowcast
+of the last lab weeks against their eventual counts.
 
 Beside the service's outputs it leaves what the other commands need:
 ``deployment.toml`` (the deployment config it ran with; relative paths, read
 from the file's own directory, so it works from any working directory),
-``history.csv`` (the clean feed in the history CSV format) and a copy of the
-example scenario file. Its closing lines are the next commands (report,
-checkpoint show, scenario, backtest, calibrate), each runnable as printed from
-the directory the demo ran in.
+``history.csv`` (the clean ED feed, final counts, in the history CSV format),
+``lab_history.csv`` (the lab feed's vintages: a history CSV with an
+``as_of`` column) and a copy of the example scenario file. Its closing lines
+are the next commands (report, checkpoint show, scenario, backtest,
+calibrate), each runnable as printed from the directory the demo ran in.
+
+Why two history files: a history CSV holds one period per end date, and a
+weekly period ends on the same Sunday as that day's daily period, so the
+daily ED series and the weekly lab series cannot share one file.
 """
 
 from __future__ import annotations
@@ -22,15 +39,17 @@ import asyncio
 import datetime as dt
 import shlex
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import orjson
 
-from filters import CompartmentalModel, simulate_season
+from filters import CompartmentalModel, reporting_cdf, simulate_season
 from schemas import DeploymentConfig, example_model_path, load_model_spec
 
 from ..runtime.app import Service
+from ..runtime.metrics import Metrics
 from ..runtime.processor import Outcome
 from ..transports import FileTransport
 
@@ -38,17 +57,26 @@ __all__ = ["run_demo", "DEMO_STREAM", "CAUTION"]
 
 DEMO_STREAM = "brackenford-ed-ili"
 DEMO_START = dt.date(2025, 9, 1)
+DEMO_MODEL = "seir_two_band_lab"  # the stream's model: the two-band SEIR observed by the ED and the lab feed
+TRUTH_MODEL = "seir_two_band"  # the hidden epidemic and its ED counts are simulated from the same dynamics
 CAUTION = (
     "Cautions: these are model-based estimates with stated uncertainty, for decision support only. "
     "Local public-health judgement and reporting rules prevail. casecloud handles aggregated counts only, "
-    "never personal identifiers. The demo district, feed and epidemic are invented."
+    "never personal identifiers. The demo district, feeds and epidemic are invented."
 )
 # Known truth for the demo (the filter is not told these).
 TRUE_PARAMS = {"beta": 0.20, "rho": 0.12, "k": 25.0}
+TRUE_LAB = {"rho_lab": 0.04, "lab_delay": 5.0}  # share of onsets lab-confirmed; mean days from specimen to report
+LAB_SERIES = "lab_confirmed"
+LAB_WEEKDAY = 0  # the lab sends on Mondays (Monday = 0) ...
+SPLIT_WEEKDAYS = (6,)  # ... and on Sundays each ED sends its own message
+ED_FEED, LAB_FEED = "brackenford-ed-daily", "brackenford-lab-weekly"
+BAND_FEEDS = {"ed_child": "brackenford-ed-children", "ed_adult": "brackenford-ed-adults"}
 
 
 CONFIG_NAME = "deployment.toml"
 HISTORY_NAME = "history.csv"
+LAB_HISTORY_NAME = "lab_history.csv"
 SCENARIO_EXAMPLE = "brackenford_schools"
 # The calibrate command the demo prints: a short trial (about half a minute on
 # the default 120 days); the command's own defaults run far longer.
@@ -86,10 +114,13 @@ output_dir = "."                    # estimates.ndjson, alerts.ndjson, dead_lett
 
 [[streams]]
 id = "{DEMO_STREAM}"
-model = "seir_two_band"             # a shipped example model, or the path of a model spec TOML
+# A shipped example model, or the path of a model spec TOML. This one observes two feeds: daily ED
+# visits per band (final on arrival) and weekly lab positives by specimen date, revised upward as
+# reports arrive (values up to 21 days old are assimilated; each estimate carries their nowcast).
+model = "{DEMO_MODEL}"
 start = "{DEMO_START.isoformat()}"                # calendar date of model day 0
 particles = {int(particles)}
-forecast_trajectories = 400
+forecast_trajectories = 300       # simulated futures per estimate (forecast quantiles, alert probabilities)
 
 [[streams.alerts]]                  # P(ed_child > 40 on some day of the next 7) with hysteresis
 name = "child_ed_surge"
@@ -102,44 +133,138 @@ persistence = 2
 """
 
 
-def _history_csv(model, observations, days: int) -> str:
-    """The clean feed as a history CSV (``schemas.load_history``): period, then one column per series."""
-    series = [s.name for s in model.series]
+# ---------------------------------------------------------------- the hidden truth of the lab feed
+@dataclass(frozen=True)
+class LabWeek:
+    """One ISO week of lab-confirmed positives by specimen date, as the hidden truth has it.
+
+    end : model day of the week's Sunday; period : ``YYYY-Www``.
+    eventual : the week's complete count (every report in).
+    arrivals : reports arriving per model day (index = day of arrival).
+    """
+
+    end: int
+    period: str
+    eventual: int
+    arrivals: np.ndarray
+
+    def known(self, day: int) -> int:
+        """The total reported as of model day ``day`` (reports of that day included)."""
+        return int(self.arrivals[: day + 1].sum())
+
+
+def _period_of(day: int, weekly: bool = False) -> str:
+    date = DEMO_START + dt.timedelta(days=day)
+    if not weekly:
+        return date.isoformat()
+    year, week, _ = date.isocalendar()
+    return f"{year}-W{week:02d}"
+
+
+def simulate_lab(lab_model: CompartmentalModel, truth, days: int, rng: np.random.Generator) -> list[LabWeek]:
+    """Weekly lab positives of the hidden epidemic, by specimen date, and when each is reported.
+
+    The lab series of the stream's spec, with the true parameters: a week's
+    count is negative binomial around ``rho_lab`` times the onsets of its days
+    (the spec's dispersion); it is spread over the week's days in proportion
+    to their onsets, and each day's positives over report delays drawn from the
+    spec's delay distribution (true mean ``lab_delay``, the spec's sd and
+    maximum), so the totals known as of a date rise towards the eventual count.
+    Onsets come from the truth's compartments: everyone leaving S enters E,
+    so onsets(t) = E(t-1) - E(t) + S(t-1) - S(t) per band. Full ISO weeks of
+    days 1..``days`` only.
+    """
+    spec = next(s for s in lab_model.spec.series if s.name == LAB_SERIES)
+    delay, dispersion = spec.reporting_delay, spec.noise.dispersion
+    assert delay is not None and isinstance(delay.sd, float) and isinstance(dispersion, float)
+    comps = list(lab_model.compartments)
+    s_, e_ = comps.index("S"), comps.index("E")
+    states = truth.states.astype(np.int64)
+    onsets = np.zeros(days + 1)
+    flows = (states[:-1, :, e_] - states[1:, :, e_]) + (states[:-1, :, s_] - states[1:, :, s_])
+    onsets[1:] = flows[:days].sum(axis=1)
+    cdf = reporting_cdf(delay.dist, TRUE_LAB["lab_delay"], delay.sd, delay.max_days)[0]
+    q = np.diff(np.concatenate([[0.0], cdf]))
+    weeks = []
+    for end in range(7, days + 1):
+        if (DEMO_START + dt.timedelta(days=end)).weekday() != 6:
+            continue
+        share = onsets[end - 6 : end + 1]
+        mu = TRUE_LAB["rho_lab"] * share.sum()
+        eventual = int(rng.poisson(rng.gamma(dispersion, mu / dispersion))) if mu > 0 else 0
+        by_day = rng.multinomial(eventual, share / share.sum()) if share.sum() > 0 else np.zeros(7, dtype=np.int64)
+        arrivals = np.zeros(end + delay.max_days + 1, dtype=np.int64)
+        for k, count in enumerate(by_day):
+            arrivals[end - 6 + k : end - 6 + k + q.size] += rng.multinomial(int(count), q)
+        weeks.append(LabWeek(end, _period_of(end, weekly=True), eventual, arrivals))
+    return weeks
+
+
+# ---------------------------------------------------------------- the feed
+def _history_csv(observations, series: list[str], days: int) -> str:
+    """The clean ED feed as a history CSV (``schemas.load_history``): period, then one column per series."""
     rows = ["period," + ",".join(series)]
     for obs in observations[:days]:
-        period = (DEMO_START + dt.timedelta(days=obs.time)).isoformat()
-        rows.append(period + "," + ",".join("" if obs.values.get(name) is None else str(int(obs.values[name])) for name in series))
+        rows.append(_period_of(obs.time) + "," + ",".join("" if obs.values.get(name) is None else str(int(obs.values[name])) for name in series))
     return "\n".join(rows) + "\n"
 
 
-def _feed_lines(observations, days: int) -> list[bytes]:
-    lines = []
+def _lab_reports(weeks: list[LabWeek], day: int, window: int) -> list[tuple[LabWeek, int]]:
+    """What the lab sends on model day ``day``: (week, total known as of that day) for every full week
+    that ended before ``day`` and at most ``window`` days before it (its reports are still arriving)."""
+    if (DEMO_START + dt.timedelta(days=day)).weekday() != LAB_WEEKDAY:
+        return []
+    return [(w, w.known(day)) for w in weeks if w.end < day and day - w.end <= window]
+
+
+def _lab_history_csv(weeks: list[LabWeek], days: int, window: int) -> str:
+    """The lab feed as a history CSV with an ``as_of`` column: one row per week and report day, in the
+    order the lab sent them (what ``casecloud backtest`` replays as known on each date)."""
+    rows = [f"period,as_of,{LAB_SERIES}"]
+    for day in range(1, days + 1):
+        rows += [f"{w.period},{_period_of(day)},{total}" for w, total in _lab_reports(weeks, day, window)]
+    return "\n".join(rows) + "\n"
+
+
+def _feed_days(observations, weeks: list[LabWeek], days: int, window: int) -> list[list[bytes]]:
+    """Per model day 1..days, the messages that arrive that day: ED counts (one message, or one per band
+    on Sundays), then on Mondays the lab totals of the recent weeks as of that day."""
+    out = []
     for obs in observations[:days]:
-        period = (DEMO_START + dt.timedelta(days=obs.time)).isoformat()
+        period = _period_of(obs.time)
         counts = {k: int(v) for k, v in obs.values.items()}
-        lines.append(orjson.dumps({"stream": DEMO_STREAM, "period": period, "counts": counts, "metadata": {"feed": "brackenford-ed-daily"}}))
-    return lines
-
-
-def _with_mistakes(lines: list[bytes]) -> list[bytes]:
-    """A real feed is not clean: one truncated line, one negative count, one re-sent day."""
-    out = list(lines)
-    # Short feeds (``--days`` below 46) get the mistakes that fit.
-    if len(lines) >= 20:
-        out.insert(20, lines[19][: len(lines[19]) // 2])
-    if len(lines) >= 31:
-        bad = orjson.loads(lines[30])
-        bad["counts"]["ed_child"] = -3
-        out.insert(31, orjson.dumps(bad))
-    resent = min(46, len(out))
-    if resent:
-        out.insert(resent, out[resent - 1])
+        if (DEMO_START + dt.timedelta(days=obs.time)).weekday() in SPLIT_WEEKDAYS:
+            msgs = [{"stream": DEMO_STREAM, "period": period, "counts": {k: v}, "metadata": {"feed": BAND_FEEDS[k]}} for k, v in counts.items()]
+        else:
+            msgs = [{"stream": DEMO_STREAM, "period": period, "counts": counts, "metadata": {"feed": ED_FEED}}]
+        for w, total in _lab_reports(weeks, obs.time, window):
+            msgs.append({"stream": DEMO_STREAM, "period": w.period, "as_of": period, "counts": {LAB_SERIES: total},
+                         "metadata": {"feed": LAB_FEED}})
+        out.append([orjson.dumps(m) for m in msgs])
     return out
 
 
-async def _run_service(config: DeploymentConfig, progress) -> dict[str, int]:
+def _with_mistakes(per_day: list[list[bytes]]) -> list[bytes]:
+    """A real feed is not clean: one truncated line (day 20), one negative count (day 31), one re-sent
+    ED message (day 44). Short feeds (``--days`` below 44) get the mistakes that fit, the re-sent one
+    on the last day."""
+    out: list[bytes] = []
+    for day, lines in enumerate(per_day, start=1):
+        out += lines
+        if day == 20:
+            out.append(lines[0][: len(lines[0]) // 2])
+        if day == 31:
+            bad = orjson.loads(next(x for x in lines if b'"ed_child"' in x))
+            bad["counts"]["ed_child"] = -3
+            out.append(orjson.dumps(bad))
+        if day == min(44, len(per_day)):
+            out.append(lines[0])
+    return out
+
+
+async def _run_service(config: DeploymentConfig, progress, metrics: Metrics) -> dict[str, int]:
     transport = FileTransport(config.file.input, config.file.output_dir)
-    service = Service(config, transport, today=lambda: DEMO_START + dt.timedelta(days=400), on_outcome=progress)
+    service = Service(config, transport, metrics=metrics, today=lambda: DEMO_START + dt.timedelta(days=400), on_outcome=progress)
     return await service.run(until_exhausted=True)
 
 
@@ -163,19 +288,25 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
     """Run the demo into ``out``; returns the readable summary (also written to summary.txt).
 
     Besides the service's outputs, ``out`` receives the deployment config the
-    demo ran with (``deployment.toml``), the feed as a history CSV
-    (``history.csv``) and a copy of the example scenario file, so that every
-    command listed at the end runs as printed on these files.
+    demo ran with (``deployment.toml``), the ED feed as a history CSV
+    (``history.csv``), the lab feed's vintages (``lab_history.csv``) and a
+    copy of the example scenario file, so that every command listed at the
+    end runs as printed on these files.
     """
     from schemas import example_scenario_path, load_deployment_config
 
     out.mkdir(parents=True, exist_ok=True)
     _start_afresh(out)
-    model = CompartmentalModel(load_model_spec(example_model_path("seir_two_band")))
-    truth = simulate_season(model, days, np.random.default_rng(seed), params=TRUE_PARAMS)
-    lines = _with_mistakes(_feed_lines(truth.observations, days))
+    truth_model = CompartmentalModel(load_model_spec(example_model_path(TRUTH_MODEL)))
+    model = CompartmentalModel(load_model_spec(example_model_path(DEMO_MODEL)))
+    truth = simulate_season(truth_model, days, np.random.default_rng(seed), params=TRUE_PARAMS)
+    # The lab's own random numbers: the hidden epidemic and its ED counts do not depend on them.
+    lab = simulate_lab(model, truth, days, np.random.default_rng([seed, 1]))
+    lines = _with_mistakes(_feed_days(truth.observations, lab, days, model.window_days))
     (out / CONFIG_NAME).write_text(demo_config_toml(particles), encoding="utf-8")
-    (out / HISTORY_NAME).write_text(_history_csv(model, truth.observations, days), encoding="utf-8")
+    ed_series = [s.name for s in truth_model.series]
+    (out / HISTORY_NAME).write_text(_history_csv(truth.observations, ed_series, days), encoding="utf-8")
+    (out / LAB_HISTORY_NAME).write_text(_lab_history_csv(lab, days, model.window_days), encoding="utf-8")
     scenario = example_scenario_path(SCENARIO_EXAMPLE)
     (out / scenario.name).write_bytes(scenario.read_bytes())
     # The demo runs with the file it wrote; environment overrides (e.g.
@@ -183,39 +314,73 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
     config = load_deployment_config(out / CONFIG_NAME, environ={})
     first = len(lines) * 3 // 5
     seen = {"n": 0}
+    skipped: dict[str, int] = {}
 
     def progress(outcome: Outcome) -> None:
         seen["n"] += 1
+        if outcome.status == "skipped":
+            skipped[outcome.reason or "?"] = skipped.get(outcome.reason or "?", 0) + 1
         if not quiet and (seen["n"] % 25 == 0 or seen["n"] == len(lines)):
             print(f"  record {seen['n']}/{len(lines)}", file=sys.stderr, flush=True)
 
     feed = out / "observations.ndjson"
     feed.write_bytes(b"\n".join(lines[:first]) + b"\n")
     if not quiet:
-        print(f"casecloud demo: {days} days of made-up ED visits, {particles} particles -> {out}", file=sys.stderr)
-    counts1 = asyncio.run(_run_service(config, progress))
+        print(f"casecloud demo: {days} days of made-up ED visits and lab reports, {particles} particles -> {out}", file=sys.stderr)
+    metrics = Metrics()  # one registry for both runs: the counters add up over the restart
+    counts1 = asyncio.run(_run_service(config, progress, metrics))
     if not quiet:
         print("  (service stopped; more data arrives; restarting from checkpoints)", file=sys.stderr)
     with open(feed, "ab") as f:
         f.write(b"\n".join(lines[first:]) + b"\n")
-    counts2 = asyncio.run(_run_service(config, progress))
-    summary = summarise_demo(out, model, truth, counts1, counts2)
+    counts2 = asyncio.run(_run_service(config, progress, metrics))
+    revisions = metrics.registry.get_sample_value("casecloud_revisions_total", {"stream": DEMO_STREAM}) or 0.0
+    feeds = {"revisions": int(revisions), "skipped": skipped}
+    summary = summarise_demo(out, model, truth_model, truth, lab, counts1, counts2, feeds)
     (out / "summary.txt").write_text(summary, encoding="utf-8")
     return summary
 
 
-def summarise_demo(out: Path, model, truth, counts1: dict, counts2: dict) -> str:
-    estimates = [orjson.loads(line) for line in (out / "estimates.ndjson").read_bytes().splitlines() if line]
-    alerts = [orjson.loads(line) for line in (out / "alerts.ndjson").read_bytes().splitlines() if line]
-    dead = [orjson.loads(line) for line in (out / "dead_letters.ndjson").read_bytes().splitlines() if line]
+def _read(path: Path) -> list[dict]:
+    return [orjson.loads(line) for line in path.read_bytes().splitlines() if line]
+
+
+def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], counts1: dict, counts2: dict, feeds: dict) -> str:
+    estimates = _read(out / "estimates.ndjson")
+    alerts = _read(out / "alerts.ndjson")
+    dead = _read(out / "dead_letters.ndjson")
+    messages = []
+    for line in (out / "observations.ndjson").read_bytes().splitlines():
+        try:
+            messages.append(orjson.loads(line))
+        except orjson.JSONDecodeError:
+            continue
+    lab_messages = [m for m in messages if LAB_SERIES in m.get("counts", {})]
+    split = sum(1 for m in messages if m.get("metadata", {}).get("feed") in BAND_FEEDS.values())
+    # The cloud after the last record of each day it reached: what it believed at the end of that day.
+    by_day: dict[int, dict] = {}
+    for e in estimates:
+        by_day[e["cloud_day"]] = e
+    daily = [by_day[d] for d in sorted(by_day)]
+    # An alert is dated by the day the cloud stood at when it was raised (a lab revision's period is a past week).
+    day_of_step = {e["step"]: _period_of(e["cloud_day"]) for e in estimates}
+    unchanged, last_total = 0, {}
+    for m in lab_messages:
+        unchanged += last_total.get(m["period"]) == m["counts"][LAB_SERIES]
+        last_total[m["period"]] = m["counts"][LAB_SERIES]
+    skipped = sum(feeds["skipped"].values())
     lines = [
-        "casecloud demo: Brackenford district (fictional), ED visits for influenza-like illness",
+        "casecloud demo: Brackenford district (fictional), ED visits for influenza-like illness and lab-confirmed positives",
         "=" * 78,
         f"records: first run applied {counts1['applied']}, skipped {counts1['skipped']}, dead-lettered {counts1['dead_letter']};",
         f"         after restart applied {counts2['applied']}, skipped {counts2['skipped']}, dead-lettered {counts2['dead_letter']}",
         f"dead letters: {', '.join(sorted(d['reason'] for d in dead)) or 'none'}",
+        f"skipped as already known: {skipped} ({', '.join(f'{n} {r}' for r, n in sorted(feeds['skipped'].items())) or 'none'}): "
+        f"{unchanged} lab totals unchanged since the lab's previous report, {skipped - unchanged} re-sent ED message(s)",
+        f"feeds: ED daily ({split} Sunday messages for one band each); lab weekly by specimen date: {len(lab_messages)} messages "
+        f"as of {len({m['as_of'] for m in lab_messages})} report days, {feeds['revisions']} revisions applied (higher totals: increments only)",
         "",
-        "How well the cloud tracked the hidden truth (90% interval = 5%..95% posterior quantiles):",
+        "How well the cloud tracked the hidden truth (90% interval = 5%..95% posterior quantiles, at the end of each day):",
         f"{'quantity':<14}{'days covered by 90% interval':>30}{'mean |error| of median':>26}",
     ]
     for comp in ("E", "I"):
@@ -223,33 +388,71 @@ def summarise_demo(out: Path, model, truth, counts1: dict, counts2: dict) -> str
             name = f"{comp}[{gname}]"
             c = model.compartments.index(comp)
             hits, errs = 0, []
-            for e in estimates:
-                true = truth.states[e["day"], g, c]
+            for e in daily:
+                true = truth.states[e["cloud_day"], g, c]
                 q = e["quantities"][name]["quantiles"]
                 hits += q["0.05"] <= true <= q["0.95"]
                 errs.append(abs(q["0.5"] - true))
-            lines.append(f"{name:<14}{f'{hits}/{len(estimates)} ({100 * hits / len(estimates):.0f}%)':>30}{np.mean(errs):>26.1f}")
-    beta_idx = model.param_names.index("beta")
+            lines.append(f"{name:<14}{f'{hits}/{len(daily)} ({100 * hits / len(daily):.0f}%)':>30}{np.mean(errs):>26.1f}")
+    beta_idx = truth_model.param_names.index("beta")
     last = estimates[-1]
+    lq = last["quantities"]
+
+    def q90(name: str, fmt: str) -> str:
+        g = lq[name]["quantiles"]
+        return f"{g['0.5']:{fmt}} (90%: {g['0.05']:{fmt}}-{g['0.95']:{fmt}})"
+
     lines += [
         "",
-        f"transmission rate beta at the end: truth {truth.params[last['day'], beta_idx]:.3f}, "
-        f"estimate {last['quantities']['beta']['quantiles']['0.5']:.3f} "
-        f"(90%: {last['quantities']['beta']['quantiles']['0.05']:.3f}-{last['quantities']['beta']['quantiles']['0.95']:.3f})",
-        f"effective reproduction number at the end: {last['quantities']['R_eff']['quantiles']['0.5']:.2f} "
-        f"(90%: {last['quantities']['R_eff']['quantiles']['0.05']:.2f}-{last['quantities']['R_eff']['quantiles']['0.95']:.2f})",
+        f"transmission rate beta at the end: truth {truth.params[last['cloud_day'], beta_idx]:.3f}, estimate {q90('beta', '.3f')}",
+        f"effective reproduction number at the end: {q90('R_eff', '.2f')}",
+    ]
+    if "lab_delay" in lq:
+        lines.append(f"lab reporting delay, mean days (learned from the revisions): truth {TRUE_LAB['lab_delay']:.1f}, "
+                     f"estimate {q90('lab_delay', '.2f')}")
+    lines += _nowcast_lines(last, lab)
+    lines += [
         f"alerts published: {len(alerts)} ("
-        + ", ".join(f"{a['status']} on {a['period']} p={a['probability']:.2f}" for a in alerts)
+        + ", ".join(f"{a['status']} on {day_of_step.get(a['step'], a['period'])} p={a['probability']:.2f}" for a in alerts)
         + ")",
         f"outputs in {out}/: estimates.ndjson, alerts.ndjson, dead_letters.ndjson, checkpoints/ (the service's);",
         f"  {CONFIG_NAME} (the deployment config this run used: edit it, pass it to serve, replay, scenario, checkpoint,",
-        f"  backtest), {HISTORY_NAME} (the feed as a history CSV), {SCENARIO_EXAMPLE}.toml (example intervention scenarios)",
+        f"  backtest), {HISTORY_NAME} (the ED feed as a history CSV, final counts), {LAB_HISTORY_NAME} (the lab feed's",
+        f"  vintages: a history CSV with an as_of column), {SCENARIO_EXAMPLE}.toml (example intervention scenarios)",
         "",
         CAUTION,
         "",
         *next_commands(out),
     ]
     return "\n".join(lines) + "\n"
+
+
+def _nowcast_lines(last: dict, lab: list[LabWeek]) -> list[str]:
+    """The last estimate's nowcast of the recent lab weeks beside the eventual counts of the hidden truth."""
+    periods = (last.get("nowcast") or {}).get(LAB_SERIES) or []
+    if not periods:
+        return ["lab nowcast: no lab week is still being reported at the end (none inside the assimilation window)", ""]
+    eventual = {w.period: w.eventual for w in lab}
+    lines = [
+        "",
+        f"Lab-confirmed positives of the last weeks: reported so far against the nowcast of the eventual count (final estimate, {last['period']}):",
+        f"{'week':<10}{'as of':>12}{'reported':>10}{'pending':>9}{'nowcast mean':>14}{'90% interval':>15}{'truth':>7}  covered",
+    ]
+    hits = 0
+    for p in periods:
+        g = p["eventual"]["quantiles"]
+        true = eventual.get(p["period"])
+        inside = true is not None and g["0.05"] <= true <= g["0.95"]
+        hits += inside
+        interval = f"{g['0.05']:.0f}-{g['0.95']:.0f}"
+        lines.append(
+            f"{p['period']:<10}{p['as_of'] or 'final':>12}{p['reported']:>10}{100 * p['share_pending']:>8.0f}%"
+            f"{p['eventual']['mean']:>14.1f}{interval:>15}{'?' if true is None else true:>7}  {'yes' if inside else 'no'}"
+        )
+    lines.append(f"  ({hits} of {len(periods)} eventual counts inside the 90% interval; 'pending': the share of the eventual count "
+                 "still expected when the total was reported)")
+    lines.append("")
+    return lines
 
 
 def next_commands(out: Path) -> list[str]:
@@ -271,10 +474,15 @@ def next_commands(out: Path) -> list[str]:
         "  # what if: school closure and vaccination scenarios from the cloud as it stands, against no change",
         f"  casecloud scenario --config {config} --stream {DEMO_STREAM} --scenarios {path(SCENARIO_EXAMPLE + '.toml')} "
         f"--out {path('scenarios')}",
-        "  # how good the forecasts and alerts were: replay the history through the service, score against baselines",
+        "  # how good the forecasts and alerts were: replay the ED history through the service, score against baselines",
         f"  casecloud backtest --config {config} --history {path(HISTORY_NAME)} --stream {DEMO_STREAM} --out {path('backtest')}",
-        "  # fit the model's static parameters to the history: a short trial (about half a minute; its diagnostics",
-        "  # will ask for more: a real fit uses the defaults and runs far longer)",
+        "  # how good the lab nowcasts were: replay the lab feed's vintages alone, as known on each date, and score the",
+        "  # nowcasts against the eventual counts beside the counts reported so far and the chain-ladder nowcast",
+        f"  casecloud backtest --config {config} --history {path(LAB_HISTORY_NAME)} --stream {DEMO_STREAM} "
+        f"--out {path('backtest-lab')}",
+        "  # fit the ED model's static parameters to the ED history (seir_two_band: the stream's model without the lab",
+        "  # series): a short trial (about half a minute; its diagnostics will ask for more: a real fit uses the",
+        "  # defaults and runs far longer)",
         f"  casecloud calibrate --model seir_two_band --history {path(HISTORY_NAME)} --start {DEMO_START.isoformat()} "
         f"{' '.join(CALIBRATE_TRIAL)} --out {path('calibration')}",
     ]

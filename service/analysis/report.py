@@ -8,8 +8,10 @@ Two kinds of page, both ``OUT/index.html`` with the PNG files beside it
   observation feed and a backtest. Fan charts per observed series, the
   susceptible build-up, the other compartments, R_eff, the drifting
   parameters, the effective sample size, exceedance probabilities with alert
-  periods, a summary table of the latest estimate and, with ``--backtest``,
-  scores, coverage and ROC curves.
+  periods, a summary table of the latest estimate, for event-dated series
+  (when the estimates carry nowcasts) the counts reported so far against the
+  nowcast of their eventual counts and, with ``--backtest``, scores, coverage
+  and ROC curves.
 * **Current-state page** (``--checkpoint-dir`` + ``--stream``): built from the
   stream's newest readable checkpoint alone (read-only). A summary table of
   the weighted cloud and weighted histograms of the parameters, R_eff and the
@@ -41,7 +43,7 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
-from schemas import AlertMessage, EstimateMessage, ObservationMessage, parse_period
+from schemas import AlertMessage, EstimateMessage, NowcastPeriod, ObservationMessage, parse_period
 
 __all__ = ["ReportError", "CAUTIONS", "build_history_report", "build_checkpoint_report", "add_report_parser"]
 
@@ -110,6 +112,9 @@ def load_alerts(path: Path, stream: str) -> list[AlertMessage]:
 @dataclass
 class Feed:
     counts: dict[str, dict[dt.date, int]] = field(default_factory=dict)  # series -> date -> count (first wins)
+    # series -> date -> as-of date of the count kept ("~" for a final count): a later vintage's higher
+    # total replaces an earlier one, as the service applies revisions
+    vintages: dict[str, dict[dt.date, str]] = field(default_factory=dict)
     skipped: int = 0
     other_streams: int = 0
 
@@ -126,9 +131,11 @@ def load_observations(path: Path, stream: str) -> Feed:
             feed.other_streams += 1
             continue
         when = parse_period(msg.period)
+        vintage = msg.as_of or "~"  # a final count is the last word ("~" sorts after any date)
         for name, value in msg.counts.items():
-            if value is not None:
-                feed.counts.setdefault(name, {}).setdefault(when, value)
+            counts, vintages = feed.counts.setdefault(name, {}), feed.vintages.setdefault(name, {})
+            if value is not None and vintage > vintages.get(when, "") and value >= counts.get(when, 0):
+                counts[when], vintages[when] = value, vintage
     return feed
 
 
@@ -316,7 +323,10 @@ def _prepare_out(out: Path) -> None:
 
 # ---------------------------------------------------------------- history page
 def _dates(estimates: Sequence[EstimateMessage]) -> list[dt.date]:
-    return [parse_period(e.period) for e in estimates]
+    """The date each estimate describes: the day its cloud stands at (``cloud_day``: a late or revised
+    value for a past period moves nothing back), else its period's last day."""
+    return [parse_period(e.period) + dt.timedelta(days=(e.cloud_day - e.day) if e.cloud_day is not None else 0)
+            for e in estimates]
 
 
 def _band(estimates: Sequence[EstimateMessage], dates: list[dt.date], name: str):
@@ -349,14 +359,21 @@ def _forecast_band(block: dict[str, Any], entry: dict[str, Any], origin: dt.date
     return band, ((dates, mean) if len(mean) == horizon else None)
 
 
-def _alert_periods(alerts: Sequence[AlertMessage], rule: str) -> list[tuple[dt.date, dt.date | None]]:
+def _alert_periods(alerts: Sequence[AlertMessage], rule: str,
+                   when: dict[int, dt.date] | None = None) -> list[tuple[dt.date, dt.date | None]]:
+    """(raised, cleared or None) dates per alert episode. ``when`` maps a step to the date the cloud stood
+    at (an alert raised on a revision of a past week is dated by the day it was raised, not by that week)."""
     periods: list[tuple[dt.date, dt.date | None]] = []
     start: dt.date | None = None
+
+    def date(a: AlertMessage) -> dt.date:
+        return (when or {}).get(a.step) or parse_period(a.period)
+
     for a in sorted((a for a in alerts if a.rule == rule), key=lambda a: a.step):
         if a.status == "raised" and start is None:
-            start = parse_period(a.period)
+            start = date(a)
         elif a.status == "cleared" and start is not None:
-            periods.append((start, parse_period(a.period)))
+            periods.append((start, date(a)))
             start = None
     if start is not None:
         periods.append((start, None))
@@ -449,7 +466,7 @@ def build_history_report(
     elif feed.skipped or feed.other_streams:
         parts.append(f'<p class="note">Observation feed: {feed.skipped} line(s) skipped as malformed or invalid '
                      f"(the service dead-letters those too), {feed.other_streams} line(s) for other streams.</p>")
-    applied = set(dates)
+    applied = {parse_period(e.period) for e in estimates}
     spec_series = {s.name: s for s in model.spec.series} if model is not None else {}
     for name in series_names:
         obs = unmatched = None
@@ -476,9 +493,14 @@ def build_history_report(
                            + (" (open red circles: periods without an estimate, e.g. rejected or not yet applied)" if unmatched and unmatched[0] else "")
                            + "; purple: the latest estimate's forecast (median, 50 % and 90 % bands, dotted mean) "
                            "including observation noise"
-                           + ("; lower panel: posterior of the latent incidence this series counts, per update." if latent is not None else "."))
+                           + ("; lower panel: posterior of the latent incidence this series counts, per update." if latent is not None else ".")
+                           + (" Counts of this series rise as reports arrive: each dot is the latest total the feed gave, "
+                              'so the last periods still read low (see <a href="#nowcast">Nowcasts</a>).'
+                              if any((e.nowcast or {}).get(name) for e in estimates) else ""))
         rf.series_figure(path, name, obs, unmatched, fband, fmean, latent, latent_label, thresholds.get(name), last_date,
                            first_date=dates[0])
+
+    _nowcast_section(page, estimates)
 
     # ---- compartments
     comps: dict[str, list[str]] = {}
@@ -554,7 +576,7 @@ def build_history_report(
             x = pts[-1][1] if pts else None
             subtitle = (f"P({x.series} > {x.threshold:g} on some day within {x.horizon_days} days)" if x else
                         (f"{ra[0].series} > {ra[0].threshold:g}" if ra else ""))
-            periods = _alert_periods(alerts, rule)
+            periods = _alert_periods(alerts, rule, {e.step: d for e, d in zip(estimates, dates)})
             path = page.figure(parts, f"exceedance_{_safe(rule)}.png", f"exceedance probability of {rule}",
                                f"<b>{_esc(rule)}</b>: exceedance probability at each update; orange: alert active "
                                f"(raised to cleared, {len(periods)} episode(s)); dashed red: raise level; dotted green: clear level.")
@@ -571,6 +593,90 @@ def build_history_report(
               "the same page. Figures are PNG files beside this page.")
     index = _write(out, page.render(facts, footer))
     return index
+
+
+def _short_date(iso: str | None) -> str:
+    return "final" if iso is None else dt.date.fromisoformat(iso).strftime("%d %b")
+
+
+def _period_label(period: str) -> str:
+    """An axis label: the period, and for a week the Monday-to-Sunday dates it covers."""
+    end = parse_period(period)
+    if "W" not in period:
+        return period
+    return f"{period}\n{(end - dt.timedelta(days=6)).strftime('%d %b')}–{end.strftime('%d %b')}"
+
+
+def _nowcast_section(page: _Page, estimates: Sequence[EstimateMessage]) -> None:
+    """Reported so far against the nowcast of the eventual count, for each event-dated series
+    (a section only when some estimate carries a nowcast period; none otherwise)."""
+    from . import report_figures as rf
+
+    names: list[str] = []
+    for e in estimates:
+        names += [n for n, periods in (e.nowcast or {}).items() if periods and n not in names]
+    if not names:
+        return
+    latest = estimates[-1]
+    parts = page.section("nowcast", "Nowcasts: counts still being reported")
+    parts.append(
+        '<p class="note">Series counted by event date (onset, specimen) keep rising for days or weeks after a '
+        "period ends, as reports arrive: the latest periods always read low. Each estimate carries a "
+        "<em>nowcast</em> for the recent periods of such a series: the total reported so far (as of the date "
+        "the feed gave), and the eventual complete count the cloud expects (posterior predictive of the reports "
+        "still to come under the series' reporting delay). Alerts judge eventual counts, never partial ones. "
+        "The eventual count is a model-based estimate too: read it with its interval.</p>"
+    )
+    for name in names:
+        first: dict[str, NowcastPeriod] = {}  # period -> its nowcast in the first estimate after its first report
+        last: dict[str, NowcastPeriod] = {}  # period -> the last published nowcast of it
+        for e in estimates:
+            for p in (e.nowcast or {}).get(name, []):
+                if p.as_of is not None:
+                    first.setdefault(p.period, p)
+                last[p.period] = p
+        now = [p for p in (latest.nowcast or {}).get(name, [])]
+        now.sort(key=lambda p: parse_period(p.period))
+        bars = [
+            rf.NowcastBar(_period_label(p.period), p.reported, p.eventual.mean, p.eventual.quantiles,
+                          note=f"as of {_short_date(p.as_of)}" + (f"\n{p.share_pending:.0%} pending" if p.as_of else ""))
+            for p in now
+        ]
+        order = sorted(first, key=parse_period)
+        season = [
+            rf.NowcastBar(_period_label(k), first[k].reported, first[k].eventual.mean, first[k].eventual.quantiles,
+                          later=last[k].reported)
+            for k in order
+        ]
+        latest_title = (f"reported so far and the nowcast in the latest estimate ({latest.period}, cloud day "
+                        f"{latest.cloud_day if latest.cloud_day is not None else latest.day})")
+        season_title = "each period's first nowcast (at its first report) against the total reported since"
+        if not bars and not season:  # only final totals were ever known: nothing is being nowcast
+            parts.append(f'<p class="note">Every period of {_esc(name)} was reported final: nothing to nowcast.</p>')
+            continue
+        path = page.figure(
+            parts, f"nowcast_{_safe(name)}.png", f"reported so far against the nowcast of {name}",
+            f"<b>{_esc(name)}</b>"
+            + (": top, the latest estimate: grey bars are the totals reported so far (as of the date above each, "
+               "with the share of the eventual count still expected); blue, the nowcast of the eventual count "
+               "(diamond: mean; thick: 50 % interval; thin: 90 % interval)." if bars else
+               ": no period of the latest estimate is still being reported.")
+            + (" Bottom, the season: for every period, the nowcast published right after its first report "
+               "(grey: the total then; blue: the nowcast) beside the total reported by the latest estimate (hatched), "
+               "which for the newest periods is itself still partial." if season else ""),
+        )
+        rf.nowcast_figure(path, name, bars, latest_title, season if len(season) > len(bars) else None, season_title)
+        if now:
+            rows = []
+            for p in now:
+                g = p.eventual.quantiles
+                rows.append((p.period, _fmt(p.reported), p.as_of or "final", f"{p.share_pending:.0%}", _fmt(p.eventual.mean),
+                             _fmt(g.get("0.5")), f"{_fmt(g.get('0.25'))} – {_fmt(g.get('0.75'))}",
+                             f"{_fmt(g.get('0.05'))} – {_fmt(g.get('0.95'))}"))
+            parts.append(_table(("period", "reported so far", "as of", "still pending", "eventual: mean", "median",
+                                 "50 % interval", "90 % interval"), rows))
+        else:
+            parts.append(f'<p class="note">No period of {_esc(name)} is still being reported in the latest estimate.</p>')
 
 
 def _backtest_section(page: _Page, bt: dict[str, Any]) -> None:

@@ -7,7 +7,8 @@ only on the data (matplotlib writes no timestamp into PNG files).
 
 Colours (one meaning each, across the page): blue = posterior of the past,
 purple = forecast, black dots = observed counts, orange shading = alert
-periods, red = collapses and thresholds.
+periods, red = collapses and thresholds; grey bars = counts reported so far
+of a period that is still being reported (nowcasts).
 """
 
 from __future__ import annotations
@@ -35,6 +36,8 @@ __all__ = [
     "backtest_score_figure",
     "backtest_coverage_figure",
     "roc_figure",
+    "NowcastBar",
+    "nowcast_figure",
 ]
 
 POSTERIOR = "#1f5f8b"
@@ -377,4 +380,77 @@ def roc_figure(path: Path, curves: Sequence[tuple[str, list[float], list[float],
         ax.set_title(name, fontsize=10, loc="left")
         ax.grid(True, color="#dddddd", linewidth=0.6)
         ax.legend(fontsize=8, loc="lower right")
+    _save(fig, path)
+
+
+REPORTED = "#b8c2cc"
+
+
+class NowcastBar:
+    """One period of an event-dated series: reported so far and the nowcast of its eventual count.
+
+    label : the period as shown on the axis; reported : total reported so far; note : a short line
+    above the bar (as-of date, share pending); q : eventual-count quantiles "0.05", "0.25", "0.5",
+    "0.75", "0.95" (NaN where absent); later : a total reported later (the season panel), or None.
+    """
+
+    def __init__(self, label: str, reported: float, mean: float, q: dict[str, float], note: str = "",
+                 later: float | None = None) -> None:
+        self.label, self.reported, self.mean, self.note, self.later = label, float(reported), float(mean), note, later
+        self.q = {k: float(q.get(k, np.nan)) for k in ("0.05", "0.25", "0.5", "0.75", "0.95")}
+
+
+def _nowcast_panel(ax, bars: Sequence[NowcastBar], later_label: str | None, annotate: bool) -> None:
+    x = np.arange(len(bars))
+    reported = np.array([b.reported for b in bars])
+    if later_label is not None:
+        later = np.array([np.nan if b.later is None else b.later for b in bars])
+        ax.bar(x, later, width=0.72, color="white", edgecolor="#6b7785", linewidth=1.0, hatch="///", label=later_label)
+    ax.bar(x, reported, width=0.46, color=REPORTED, edgecolor="#6b7785", linewidth=0.8,
+           label="reported so far" if later_label is None else "reported at the nowcast")
+    q = {k: np.array([b.q[k] for b in bars]) for k in ("0.05", "0.25", "0.5", "0.75", "0.95")}
+    ax.vlines(x, q["0.05"], q["0.95"], color=POSTERIOR, linewidth=1.6, label="nowcast of the eventual count: 90 %")
+    ax.vlines(x, q["0.25"], q["0.75"], color=POSTERIOR, linewidth=6.0, alpha=0.75, label="nowcast: 50 %")
+    ax.plot(x, [b.mean for b in bars], "D", color="white", markeredgecolor=POSTERIOR, markeredgewidth=1.4, markersize=6,
+            linestyle="none", label="nowcast: mean")
+    top = np.nanmax(np.concatenate([reported, q["0.95"], [b.mean for b in bars],
+                                    [b.later for b in bars if b.later is not None], [1.0]]))
+    ax.set_ylim(0, top * (1.22 if annotate else 1.08))
+    if annotate:
+        for k, b in enumerate(bars):
+            if b.note:
+                y = np.nanmax([b.reported, b.q["0.95"], b.mean])
+                ax.annotate(b.note, (x[k], y), xytext=(0, 5), textcoords="offset points", ha="center", va="bottom",
+                            fontsize=8, color="#333333")
+    ax.set_xticks(x, [b.label for b in bars], fontsize=8 if len(bars) <= 12 else 7,
+                  rotation=0 if len(bars) <= 8 else 45, ha="center" if len(bars) <= 8 else "right")
+    ax.set_xlim(-0.6, max(len(bars), 3) - 0.4)  # a few periods do not become slabs
+    ax.set_ylabel("count per period", fontsize=9)
+    ax.grid(True, axis="y", color="#dddddd", linewidth=0.6)
+    ax.set_axisbelow(True)
+
+
+def nowcast_figure(
+    path: Path,
+    series: str,
+    latest: Sequence[NowcastBar],
+    latest_title: str,
+    season: Sequence[NowcastBar] | None = None,
+    season_title: str = "",
+) -> None:
+    """Reported so far against the nowcast of the eventual count, per period.
+
+    Top: the periods of the latest estimate (each annotated with its note, e.g. the as-of date and the
+    share still pending). Bottom (with ``season``): every period's nowcast when it was first reported,
+    beside the total reported by the latest estimate (``NowcastBar.later``), so early nowcasts can be
+    compared with what came in afterwards. At least one of the two must hold a bar.
+    """
+    rows = [r for r in ((latest, latest_title, None, True), (season, season_title, "reported by the latest estimate", False)) if r[0]]
+    heights = [3.4 if r[3] else 3.2 for r in rows]
+    fig = Figure(figsize=(11.0, sum(heights) + 0.7), dpi=DPI, layout="constrained")
+    axes = fig.subplots(len(rows), 1, squeeze=False, height_ratios=heights)
+    for ax, (bars, title, later_label, annotate) in zip(axes[:, 0], rows):
+        _nowcast_panel(ax, bars, later_label, annotate)
+        ax.set_title(f"{series}: {title}", fontsize=10, loc="left")
+        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.005, 1.0), frameon=False)
     _save(fig, path)

@@ -8,6 +8,8 @@ then split as a POSIX shell would (``shlex``) and run verbatim, from the same
 directory, with the same console script. The demo is small (40 days, 200
 particles) and the printed commands use their printed options: the calibrate
 line carries its own short-trial options, the others run at their defaults.
+The demo prints two backtests: the ED history (final counts) and the lab
+feed's vintages (a history CSV with an ``as_of`` column).
 """
 
 from __future__ import annotations
@@ -22,21 +24,37 @@ import orjson
 import pytest
 
 from schemas import example_model_path, example_scenario_path, load_deployment_config, load_history, load_model_spec
-from service.analysis.demo import CONFIG_NAME, DEMO_STREAM, HISTORY_NAME, SCENARIO_EXAMPLE, _start_afresh
+from service.analysis.demo import (
+    CONFIG_NAME,
+    DEMO_STREAM,
+    HISTORY_NAME,
+    LAB_HISTORY_NAME,
+    LAB_SERIES,
+    SCENARIO_EXAMPLE,
+    _start_afresh,
+)
 from service.cli import build_parser, main
 
-pytestmark = pytest.mark.slow  # the demo and five commands: about half a minute
+pytestmark = pytest.mark.slow  # the demo and six commands: about half a minute
 
 CASECLOUD = Path(sys.executable).with_name("casecloud")  # the console script installed beside this Python
 OUT = "runs/first try"
-# Each printed command and what it must leave behind (relative to the demo's directory).
+# Each printed command (its name, and its --out when a command is printed twice) and what it must leave
+# behind (relative to the demo's directory).
 EXPECTED = {
-    "report": ["report/index.html"],
+    "report": ["report/index.html", "report/nowcast_lab_confirmed.png"],
     "checkpoint": [],  # prints only
     "scenario": ["scenarios/scenarios.json", "scenarios/scenarios.csv", "scenarios/scenarios_daily.csv"],
     "backtest": ["backtest/backtest.json", "backtest/scores.csv", "backtest/per_origin.csv"],
+    "backtest-lab": ["backtest-lab/backtest.json", "backtest-lab/nowcast_scores.csv", "backtest-lab/nowcast_per_origin.csv"],
     "calibrate": ["calibration/draws.csv", "calibration/summary.json", "calibration/prior.toml"],
 }
+
+
+def _name(command: str) -> str:
+    """The command's key in EXPECTED: its name, or for the second backtest the directory it writes."""
+    argv = shlex.split(command)
+    return "backtest-lab" if argv[1] == "backtest" and argv[argv.index("--out") + 1].endswith("backtest-lab") else argv[1]
 
 
 def _casecloud(argv: list[str], cwd: Path) -> subprocess.CompletedProcess:
@@ -53,11 +71,11 @@ def demo(tmp_path_factory) -> dict:
     return {"cwd": cwd, "out": cwd / OUT, "stdout": run.stdout, "commands": commands}
 
 
-def test_the_closing_lines_are_the_five_next_commands(demo):
+def test_the_closing_lines_are_the_six_next_commands(demo):
     lines = demo["stdout"].rstrip("\n").splitlines()
     # The commands close the output (after the cautions), so they are what a newcomer sees last.
     assert lines[-1].startswith("  casecloud calibrate ")
-    assert [shlex.split(c)[1] for c in demo["commands"]] == list(EXPECTED)
+    assert [_name(c) for c in demo["commands"]] == list(EXPECTED)
     # Bug caught: a printed command that no longer parses (an option renamed or dropped).
     parser = build_parser()
     for command in demo["commands"]:
@@ -66,7 +84,7 @@ def test_the_closing_lines_are_the_five_next_commands(demo):
 
 @pytest.mark.parametrize("name", list(EXPECTED))
 def test_each_printed_command_runs_verbatim_from_the_same_directory(demo, name):
-    command = next(c for c in demo["commands"] if shlex.split(c)[1] == name)
+    command = next(c for c in demo["commands"] if _name(c) == name)
     argv = shlex.split(command)
     assert argv[0] == "casecloud"
     run = _casecloud(argv[1:], demo["cwd"])
@@ -106,22 +124,41 @@ def test_config_loads_from_anywhere_and_points_at_the_demo_files(demo, tmp_path,
     assert main(["checkpoint", "show", "--config", str(moved / CONFIG_NAME)]) == 0
 
 
-def test_history_csv_is_the_clean_feed(demo):
-    out = demo["out"]
-    spec = load_model_spec(example_model_path("seir_two_band"))
-    history = load_history(out / HISTORY_NAME, allowed_series=[s.name for s in spec.series])
-    feed: dict[str, dict] = {}
+def _feed(out: Path) -> list[dict]:
+    messages = []
     for line in (out / "observations.ndjson").read_bytes().splitlines():
         try:
             message = orjson.loads(line)
         except orjson.JSONDecodeError:
             continue  # the feed's deliberately truncated line
         if all(v >= 0 for v in message["counts"].values()):  # and its negative count
-            feed[message["period"]] = message["counts"]
+            messages.append(message)
+    return messages
+
+
+def test_history_csv_is_the_clean_ed_feed(demo):
+    out = demo["out"]
+    spec = load_model_spec(example_model_path("seir_two_band"))
+    history = load_history(out / HISTORY_NAME, allowed_series=[s.name for s in spec.series])
+    feed: dict[str, dict] = {}
+    for message in _feed(out):
+        if LAB_SERIES not in message["counts"]:
+            feed.setdefault(message["period"], {}).update(message["counts"])  # Sundays: one message per band
     # Bug caught: the CSV built from the feed with its mistakes (a re-sent day twice, a negative
-    # count), or with series in a different order from the header.
+    # count), a Sunday holding one band only, or series in a different order from the header.
     assert history.periods == sorted(feed) and len(history) == 40
-    assert [dict(v) for v in history.values] == [feed[p] for p in history.periods]
+    assert [dict(v) for v in history.values] == [{k: feed[p][k] for k in ("ed_child", "ed_adult")} for p in history.periods]
+
+
+def test_lab_history_csv_holds_the_lab_feeds_vintages(demo):
+    out = demo["out"]
+    spec = load_model_spec(example_model_path("seir_two_band_lab"))
+    history = load_history(out / LAB_HISTORY_NAME, allowed_series=[s.name for s in spec.series])
+    sent = [(m["period"], m["as_of"], m["counts"][LAB_SERIES]) for m in _feed(out) if LAB_SERIES in m["counts"]]
+    assert history.vintages is not None and history.series == [LAB_SERIES]
+    # Bug caught: vintages lost (final counts only), reordered, or differing from what the lab sent.
+    assert [(v.period, v.as_of.isoformat(), v.counts[LAB_SERIES]) for v in history.vintages] == sent
+    assert len({p for p, _, _ in sent}) < len(sent)  # weeks known as of several dates
 
 
 def test_the_example_scenario_file_names_the_demo_stream_and_files(demo):

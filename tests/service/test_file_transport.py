@@ -233,8 +233,11 @@ def test_demo_command_and_checkpoint_verify(tmp_path, capsys):
     printed = capsys.readouterr().out
 
     estimates = _lines(out / "estimates.ndjson")
-    assert len(estimates) == 40  # one per simulated day, none twice across the restart
-    assert [e["day"] for e in estimates] == list(range(1, 41))  # the demo's days 1..40, in order
+    # One per applied record (the ED feed daily, per band on Sundays; lab totals on Wednesdays), none
+    # twice across the restart: every step once, the cloud never moving back, reaching each of days 1..40.
+    assert [e["step"] for e in estimates] == list(range(1, len(estimates) + 1))
+    cloud_days = [e["cloud_day"] for e in estimates]
+    assert cloud_days == sorted(cloud_days) and sorted(set(cloud_days)) == list(range(1, 41))
     dead = _lines(out / "dead_letters.ndjson")
     assert sorted(d["reason"] for d in dead) == ["bad_count", "malformed_json"]  # the truncated line, the -3
     negative = next(d for d in dead if d["reason"] == "bad_count")

@@ -26,8 +26,15 @@ import pytest  # noqa: E402
 
 from schemas import AlertMessage  # noqa: E402
 from service import cli  # noqa: E402
-from service.analysis.report import _alert_periods, _fmt, _forecast_band  # noqa: E402
-from service.analysis.report_figures import ess_figure  # noqa: E402
+from service.analysis.report import (  # noqa: E402
+    _alert_periods,
+    _dates,
+    _fmt,
+    _forecast_band,
+    load_estimates,
+    load_observations,
+)
+from service.analysis.report_figures import NowcastBar, ess_figure, nowcast_figure  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 STREAM = "brackenford-ed-ili"  # the demo's invented district
@@ -124,8 +131,8 @@ def test_report_writes_page_and_real_figures(report):
     page = (report / "index.html").read_text(encoding="utf-8")
     sources = _img_sources(page)
     expected = {
-        "series_ed_child.png", "series_ed_adult.png", "susceptibles.png", "compartments.png", "r_eff.png",
-        "parameters.png", "ess.png", "exceedance_child_ed_surge.png",
+        "series_ed_child.png", "series_ed_adult.png", "series_lab_confirmed.png", "nowcast_lab_confirmed.png",
+        "susceptibles.png", "compartments.png", "r_eff.png", "parameters.png", "ess.png", "exceedance_child_ed_surge.png",
         "backtest_wis.png", "backtest_coverage.png", "backtest_roc.png",
     }
     assert set(sources) == expected
@@ -149,7 +156,7 @@ def test_page_states_facts_cautions_and_window(report, demo):
     ):
         assert phrase in page
     assert page.index('class="caution"') < page.index("<h2>")  # the cautions come before any section
-    assert last["model"] == "seir_two_band" and "seir_two_band" in page
+    assert last["model"] == "seir_two_band_lab" and "seir_two_band_lab" in page
     assert last["model_fingerprint"] in page
     assert STREAM in page
     assert f"{first['period']} to {last['period']}" in page
@@ -230,6 +237,100 @@ def test_alert_periods_from_raise_to_clear():
               _alert("raised", "2025-10-01", 30)]
     assert _alert_periods(alerts, "r") == [(dt.date(2025, 9, 10), dt.date(2025, 9, 20)), (dt.date(2025, 10, 1), None)]
     assert _alert_periods(alerts, "other") == []
+
+
+def test_alert_raised_on_a_revision_is_dated_by_the_cloud_day():
+    # A lab revision of week 42 (ends Sunday 19 Oct) applied on 29 Oct raises the alert.
+    alerts = [_alert("raised", "2025-W42", 79), _alert("cleared", "2025-11-20", 140)]
+    when = {79: dt.date(2025, 10, 29), 140: dt.date(2025, 11, 20)}
+    # Bug caught: the alert shading starting at the revised week's Sunday, ten days before it was raised.
+    assert _alert_periods(alerts, "r", when) == [(dt.date(2025, 10, 29), dt.date(2025, 11, 20))]
+
+
+# ----------------------------------------------------------------- nowcasts
+def _pixels_of(rgb: np.ndarray, colour: str, tol: float = 0.04) -> int:
+    want = np.array([int(colour[i : i + 2], 16) / 255 for i in (1, 3, 5)])
+    return int((np.abs(rgb[..., :3] - want).max(axis=-1) < tol).sum())
+
+
+def test_nowcast_section_shows_the_latest_estimates_nowcast(report, demo):
+    page = (report / "index.html").read_text(encoding="utf-8")
+    last = _estimates(demo)[-1]
+    periods = last["nowcast"]["lab_confirmed"]
+    assert periods and '<section id="nowcast">' in page and 'href="#nowcast"' in page
+    assert page.index('id="series"') < page.index('id="nowcast"') < page.index('id="compartments"')
+    pixels = check_png(report / "nowcast_lab_confirmed.png")
+    # Grey bars (reported so far) and blue intervals (the nowcast) are drawn.
+    assert _pixels_of(pixels, "#b8c2cc") > 2000 and _pixels_of(pixels, "#1f5f8b") > 300
+    # Bug caught: the table (and so the figure) built from an older estimate, or the share pending
+    # and the eventual count's interval mixed up.
+    for p in periods:
+        g = p["eventual"]["quantiles"]
+        row = (f"<tr><td>{p['period']}</td><td>{_fmt(p['reported'])}</td><td>{p['as_of']}</td>"
+               f"<td>{p['share_pending']:.0%}</td><td>{_fmt(p['eventual']['mean'])}</td><td>{_fmt(g['0.5'])}</td>"
+               f"<td>{_fmt(g['0.25'])} – {_fmt(g['0.75'])}</td><td>{_fmt(g['0.05'])} – {_fmt(g['0.95'])}</td></tr>")
+        assert row in page
+    assert "decision support only" in page  # the cautions stay
+
+
+@pytest.mark.parametrize("nowcast", [None, {"lab_confirmed": []}], ids=["absent", "no-period-pending"])
+def test_nowcast_section_is_omitted_cleanly_without_nowcasts(demo, tmp_path, nowcast):
+    lines = []
+    for line in (demo / "estimates.ndjson").read_bytes().splitlines():
+        e = orjson.loads(line)
+        e["nowcast"] = nowcast
+        lines.append(orjson.dumps(e))
+    (tmp_path / "estimates.ndjson").write_bytes(b"\n".join(lines) + b"\n")
+    out = tmp_path / "report"
+    args = ["report", "--estimates", str(tmp_path / "estimates.ndjson"), "--observations", str(demo / "observations.ndjson"),
+            "--out", str(out)]
+    assert cli.main(args) == 0
+    page = (out / "index.html").read_text(encoding="utf-8")
+    # Bug caught: an empty section or figure, a crash on estimates of a model without event-dated
+    # series, or a link to a section that is not there.
+    assert 'id="nowcast"' not in page and "#nowcast" not in page and "nowcast_" not in page
+    assert not list(out.glob("nowcast_*.png"))
+    assert {p.name for p in out.glob("*.png")} == set(_img_sources(page))
+    assert "series_lab_confirmed.png" in _img_sources(page)  # the rest of the page is unchanged
+
+
+def test_nowcast_figure_without_a_pending_period_draws_the_season_only(tmp_path):
+    season = [NowcastBar(f"2025-W{40 + k}", 10 * k + 5, 10 * k + 9, {"0.05": 10 * k + 6, "0.25": 10 * k + 8, "0.5": 10 * k + 9,
+                                                                     "0.75": 10 * k + 10, "0.95": 10 * k + 13}, later=10 * k + 8)
+              for k in range(6)]
+    nowcast_figure(tmp_path / "both.png", "lab", season[-2:], "latest", season, "season")
+    nowcast_figure(tmp_path / "season.png", "lab", [], "latest", season, "season")
+    both, alone = check_png(tmp_path / "both.png"), check_png(tmp_path / "season.png")
+    assert alone.shape[0] < both.shape[0]  # one panel, not an empty one above it
+
+
+def test_observed_counts_of_a_revised_series_are_the_latest_vintage(tmp_path):
+    stream = "s"
+    msgs = [
+        {"stream": stream, "period": "2025-W40", "as_of": "2025-10-06", "counts": {"lab": 5}},
+        {"stream": stream, "period": "2025-10-06", "counts": {"ed": 31}},
+        {"stream": stream, "period": "2025-W40", "as_of": "2025-10-13", "counts": {"lab": 9}},
+        {"stream": stream, "period": "2025-W40", "as_of": "2025-10-08", "counts": {"lab": 7}},  # stale vintage
+        {"stream": stream, "period": "2025-W40", "as_of": "2025-10-20", "counts": {"lab": 8}},  # lower total
+        {"stream": stream, "period": "2025-10-06", "counts": {"ed": 99}},  # a final count sent again
+    ]
+    path = tmp_path / "obs.ndjson"
+    path.write_bytes(b"\n".join(orjson.dumps(m) for m in msgs) + b"\n")
+    feed = load_observations(path, stream)
+    # Bug caught: dots showing the first (lowest) report of a revised week, or totals the service
+    # never applies (a stale vintage, a lowered total); a final count stays the first one given.
+    assert feed.counts == {"lab": {dt.date(2025, 10, 5): 9}, "ed": {dt.date(2025, 10, 6): 31}}
+
+
+def test_estimates_are_placed_at_the_cloud_day(demo):
+    estimates = load_estimates(demo / "estimates.ndjson", None)
+    dates = _dates(estimates)
+    revisions = [d for e, d in zip(estimates, dates) if "W" in e.period]
+    assert revisions  # lab totals for past weeks were applied
+    # Bug caught: a revision of a past week drawn at that week's Sunday, so every band over time
+    # zigzags back and forth.
+    assert dates == sorted(dates)
+    assert [(d - dates[0]).days for d in dates] == [e.cloud_day - estimates[0].cloud_day for e in estimates]
 
 
 def test_collapses_are_highlighted_in_red(tmp_path):
