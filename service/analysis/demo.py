@@ -335,7 +335,12 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
         f.write(b"\n".join(lines[first:]) + b"\n")
     counts2 = asyncio.run(_run_service(config, progress, metrics))
     revisions = metrics.registry.get_sample_value("casecloud_revisions_total", {"stream": DEMO_STREAM}) or 0.0
-    feeds = {"revisions": int(revisions), "skipped": skipped}
+    # The lab backtest scores nowcasts against complete counts: a week whose reports are all in by the
+    # last report day (the history CSV's last as-of date); a short demo has none, and does not offer it.
+    max_days = next(s for s in model.spec.series if s.name == LAB_SERIES).reporting_delay.max_days
+    reported_on = [d for d in range(1, days + 1) if _lab_reports(lab, d, model.window_days)]
+    scorable = bool(reported_on) and any(w.end + max_days <= reported_on[-1] for w in lab)
+    feeds = {"revisions": int(revisions), "skipped": skipped, "lab_backtest": scorable}
     summary = summarise_demo(out, model, truth_model, truth, lab, counts1, counts2, feeds)
     (out / "summary.txt").write_text(summary, encoding="utf-8")
     return summary
@@ -422,7 +427,7 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
         "",
         CAUTION,
         "",
-        *next_commands(out),
+        *next_commands(out, lab_backtest=feeds.get("lab_backtest", True)),
     ]
     return "\n".join(lines) + "\n"
 
@@ -455,9 +460,11 @@ def _nowcast_lines(last: dict, lab: list[LabWeek]) -> list[str]:
     return lines
 
 
-def next_commands(out: Path) -> list[str]:
+def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
     """The closing lines: what to run next, each command runnable as printed from the
-    directory the demo ran in (paths are ``out`` as given, quoted for a POSIX shell)."""
+    directory the demo ran in (paths are ``out`` as given, quoted for a POSIX shell).
+    ``lab_backtest``: offer the backtest of the lab vintages (a demo of a few weeks has no
+    complete lab week to score, so it does not)."""
     d = str(out)
 
     def path(name: str) -> str:
@@ -476,10 +483,12 @@ def next_commands(out: Path) -> list[str]:
         f"--out {path('scenarios')}",
         "  # how good the forecasts and alerts were: replay the ED history through the service, score against baselines",
         f"  casecloud backtest --config {config} --history {path(HISTORY_NAME)} --stream {DEMO_STREAM} --out {path('backtest')}",
-        "  # how good the lab nowcasts were: replay the lab feed's vintages alone, as known on each date, and score the",
-        "  # nowcasts against the eventual counts beside the counts reported so far and the chain-ladder nowcast",
-        f"  casecloud backtest --config {config} --history {path(LAB_HISTORY_NAME)} --stream {DEMO_STREAM} "
-        f"--out {path('backtest-lab')}",
+        *([
+            "  # how good the lab nowcasts were: replay the lab feed's vintages alone, as known on each date, and score",
+            "  # the nowcasts against the eventual counts beside the counts reported so far and the chain-ladder nowcast",
+            f"  casecloud backtest --config {config} --history {path(LAB_HISTORY_NAME)} --stream {DEMO_STREAM} "
+            f"--out {path('backtest-lab')}",
+        ] if lab_backtest else []),
         "  # fit the ED model's static parameters to the ED history (seir_two_band: the stream's model without the lab",
         "  # series): a short trial (about half a minute; its diagnostics will ask for more: a real fit uses the",
         "  # defaults and runs far longer)",

@@ -162,3 +162,12 @@ def test_hidden_lab_reports_rise_to_the_eventual_count():
     expected = float(np.mean(cdf[1:8]))
     assert 0.3 < expected < 0.6
     assert np.mean(first_share) == pytest.approx(expected, abs=0.06)
+
+
+def test_a_short_demo_does_not_offer_a_lab_backtest_it_cannot_score(tmp_path, capsys):
+    # 30 days: the lab's first week (ends day 13) is not complete by its last report (day 28), so the
+    # lab backtest would score nothing and exit 1. Bug caught: a printed next command that fails.
+    assert cli.main(["demo", "--out", str(tmp_path), "--days", "30", "--particles", "50", "--quiet"]) == 0
+    printed = capsys.readouterr().out
+    assert "lab_history.csv --stream" not in printed and "casecloud backtest " in printed
+    assert (tmp_path / "lab_history.csv").read_text().count("\n") > 1  # the vintages are still written
