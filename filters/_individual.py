@@ -195,9 +195,7 @@ class IndividualModel(ObservedSeries):
         self._iota = self._value(tr.importation, "transmission.importation")
         self._person_factor = self._place_factors()
         self._community_targets()
-        self._venues = [pop.households, *pop.settings, None]  # None: the community
-        self._factor_columns = [np.ascontiguousarray(self._person_factor[:, k]) for k in range(len(self.places))]
-        self._edges: dict[int, np.ndarray] = {}
+        self._place_table()
         # Disease histories.
         d = spec.disease
         self.latent = _Table(*period_pmf(d.latent, 0))
@@ -213,12 +211,13 @@ class IndividualModel(ObservedSeries):
         self.slots = [
             "infection", "onset", "infectious", "recovery",
             *[f"infection.{p}" for p in self.places], "infection.imported",
-            "infectious_days.symptomatic", "infectious_days.asymptomatic",
-            "stock.S", "stock.E", "stock.I", "stock.R",
+            "recovery.asymptomatic",
+            "stock.S", "stock.E", "stock.I", "stock.I_asymptomatic", "stock.R",
         ]  # fmt: skip
         self._slot = {name: k for k, name in enumerate(self.slots)}
         self._cause0 = self._slot["infection.household"]
-        self._stocks = [self._slot[f"stock.{c}"] for c in "SEIR"]
+        # End-of-day people: S, E, I with symptoms, I without, R.
+        self._stocks = [self._slot[f"stock.{c}"] for c in ("S", "E", "I", "I_asymptomatic", "R")]
         # Series, through the shared observation layer.
         longest = max(
             [s.delay.max_days for s in spec.series if s.delay is not None]
@@ -287,11 +286,37 @@ class IndividualModel(ObservedSeries):
         self._band_members = order
         self._band_start = np.concatenate([[0], np.cumsum(pop.band_counts())]).astype(np.int64)
 
-    def _particle_edges(self, n: int) -> np.ndarray:
-        edges = self._edges.get(n)
-        if edges is None:
-            edges = self._edges[n] = np.arange(n + 1)
-        return edges
+    def _place_table(self) -> None:
+        """All places of all kinds in one table, so a contact's target is a few gathers.
+
+        ``_place_of[person, k]``: the person's place of kind k (household, each
+        setting, community) as a row of ``_place_start`` / ``_place_size``, whose
+        members are ``_place_members[start : start + size]``. The community is one
+        place holding everyone (homogeneous mixing), or one place per band when a
+        community contact matrix is given (the band is then drawn per contact).
+        """
+        pop = self.population
+        kinds = [pop.households, *pop.settings]
+        starts, sizes, members = [], [], []
+        offset_places = offset_members = 0
+        self._place_of = np.full((pop.size, len(self.places)), -1, dtype=np.int64)
+        for k, venues in enumerate(kinds):
+            has = venues.venue >= 0
+            self._place_of[has, k] = venues.venue[has] + offset_places
+            starts.append(venues.start[:-1] + offset_members)
+            sizes.append(venues.sizes)
+            members.append(venues.members)
+            offset_places += venues.count
+            offset_members += venues.members.size
+        self._community_place = offset_places
+        bands = np.diff(self._band_start)
+        starts.append(self._band_start[:-1] + offset_members if not self._homogeneous else np.array([offset_members]))
+        sizes.append(bands if not self._homogeneous else np.array([pop.size]))
+        members.append(self._band_members if not self._homogeneous else np.arange(pop.size, dtype=np.int32))
+        self._place_of[:, -1] = offset_places if self._homogeneous else offset_places + pop.band
+        self._place_start = np.concatenate(starts).astype(np.int64)
+        self._place_size = np.concatenate(sizes).astype(np.int64)
+        self._place_members = np.concatenate(members).astype(np.int32)
 
     # -------------------------------------------------------------- protocol
     def fingerprint(self) -> str:
@@ -350,10 +375,16 @@ class IndividualModel(ObservedSeries):
         return (np.where(silent, ASYMPTOMATIC_BASE - 1, SYMPTOMATIC_BASE - 1) + days).astype(np.uint8)
 
     def _stage_counts(self, codes: np.ndarray) -> np.ndarray:
-        """(n, 4, bands) people in S, E, I, R by band (a full scan; used at the start only)."""
+        """(n, 5, bands) people in S, E, I with symptoms, I without, R by band (a full scan; used at the start only)."""
         onehot = np.zeros((self.people, self.n_groups), dtype=np.float32)
         onehot[np.arange(self.people), self.population.band] = 1.0
-        stages = [codes == SUSCEPTIBLE, codes < SYMPTOMATIC_BASE, (codes >= SYMPTOMATIC_BASE) & (codes < _ACTIVE_BELOW), codes == RECOVERED]
+        stages = [
+            codes == SUSCEPTIBLE,
+            codes < SYMPTOMATIC_BASE,
+            (codes >= SYMPTOMATIC_BASE) & (codes < ASYMPTOMATIC_BASE),
+            (codes >= ASYMPTOMATIC_BASE) & (codes < _ACTIVE_BELOW),
+            codes == RECOVERED,
+        ]
         return np.stack([np.rint(s.astype(np.float32) @ onehot) for s in stages], axis=1).astype(np.int32)
 
     def _column(self, params: np.ndarray, col: int | None, const: float) -> np.ndarray | float:
@@ -390,64 +421,61 @@ class IndividualModel(ObservedSeries):
 
     def _day(self, codes: np.ndarray, params: np.ndarray, history: np.ndarray, rng: np.random.Generator, factors: np.ndarray | None) -> None:
         n, P = codes.shape
-        pop = self.population
+        C = len(self.places)
         flat = codes.reshape(-1)
         # 1. Who is latent or infectious at the start of the day.
         active = np.flatnonzero(flat < _ACTIVE_BELOW)
         code = flat[active]
-        is_inf = code >= SYMPTOMATIC_BASE
-        inf = active[is_inf]
-        inf_code = code[is_inf]
+        inf_at = np.flatnonzero(code >= SYMPTOMATIC_BASE)
+        inf = active[inf_at]
         inf_particle = inf // P
-        inf_person = (inf - inf_particle * P).astype(np.intp)
-        silent = inf_code >= ASYMPTOMATIC_BASE
-        weight = np.where(silent, self.relative, 1.0)
-        # 2. Infectious contacts: per particle and place a Poisson total, each contact's
-        # source drawn in proportion to its rate, its target uniformly in the source's place.
-        beta = self._rates(params, None if factors is None else factors[:, :-1])
-        contacted, cause = [], []
-        for k, venues in enumerate(self._venues):
-            rate = self._factor_columns[k][inf_person] * weight
-            pos = np.flatnonzero(rate > 0)
-            if pos.size == 0:
-                continue
-            cum = np.cumsum(rate[pos])
-            bounds = np.searchsorted(inf_particle[pos], self._particle_edges(n))
-            low = np.where(bounds[:-1] > 0, cum[np.maximum(bounds[:-1] - 1, 0)], 0.0)
-            pressure = np.where(bounds[1:] > bounds[:-1], cum[np.maximum(bounds[1:] - 1, 0)] - low, 0.0)
-            made = rng.poisson(beta[:, k] * pressure)
-            particle = np.repeat(np.arange(n), made)
-            u = rng.random((particle.size, 2))
-            picked = np.searchsorted(cum, low[particle] + u[:, 0] * pressure[particle], side="right")
-            picked = np.clip(picked, bounds[particle], bounds[particle + 1] - 1)
-            who = inf_person[pos[picked]]
-            if venues is not None:
-                v = venues.venue[who]
-                first = venues.start[v]
-                target = venues.members[first + (u[:, 1] * (venues.start[v + 1] - first)).astype(np.int64)]
-            elif self._homogeneous:
-                target = (u[:, 1] * P).astype(np.int64)
-            else:
-                cdf = self._community_cdf[pop.band[who]]
-                to_band = np.minimum((cdf <= rng.random(particle.size)[:, None]).sum(axis=1), self.n_groups - 1)
-                first = self._band_start[to_band]
-                target = self._band_members[first + (u[:, 1] * (self._band_start[to_band + 1] - first)).astype(np.int64)]
-            contacted.append(particle * P + target)
-            cause.append(np.full(particle.size, k, dtype=np.int8))
+        inf_person = inf - inf_particle * P
+        # 2. Infectious contacts: each case makes a Poisson number over all its places
+        # (rate of place k: beta_k x m/(m - 1) x weight), each contact's place drawn in
+        # proportion to its rate, its target uniformly among that place's members.
+        # np.take gathers rows several times faster than fancy indexing.
+        rates = np.take(self._rates(params, None if factors is None else factors[:, :-1]), inf_particle, axis=0)
+        rates *= np.take(self._person_factor, inf_person, axis=0)
+        silent = code[inf_at] >= ASYMPTOMATIC_BASE
+        if self.relative != 1.0 and silent.any():
+            rates[silent] *= self.relative
+        total = rates[:, 0].copy()
+        for k in range(1, C):
+            total += rates[:, k]
+        source = np.repeat(np.arange(inf.size), rng.poisson(total))
+        u = rng.random((source.size, 2))
+        mine = np.take(rates, source, axis=0)
+        del rates
+        x = u[:, 0] * np.take(total, source)
+        del total
+        place = np.zeros(source.size, dtype=np.int8)
+        reached = mine[:, 0].copy()
+        for k in range(1, C):
+            place += reached <= x
+            reached += mine[:, k]
+        del mine, reached, x
+        who = np.take(inf_person, source)
+        row = np.take(self._place_of.reshape(-1), who * C + place)
+        if not self._homogeneous:
+            community = np.flatnonzero(place == C - 1)
+            cdf = self._community_cdf[self.population.band[who[community]]]
+            row[community] = self._community_place + np.minimum((cdf <= rng.random(community.size)[:, None]).sum(axis=1), self.n_groups - 1)
+        target = self._place_members[self._place_start[row] + (u[:, 1] * self._place_size[row]).astype(np.int64)]
+        contacted = np.take(inf_particle, source) * P + target
+        del who, row, target, u
+        # Importation: Poisson(iota) contacts per particle from outside, each to a uniformly chosen person.
         iota = self._column(params, self._iota[1], self._iota[0])
         if factors is not None:
             iota = iota * factors[:, -1]  # the last column scales importation
         imports = rng.poisson(np.broadcast_to(np.maximum(iota, 0.0), (n,)))
         particle = np.repeat(np.arange(n), imports)
-        contacted.append(particle * P + (rng.random(particle.size) * P).astype(np.int64))
-        cause.append(np.full(particle.size, len(self.places), dtype=np.int8))
-        contacted_all = np.concatenate(contacted)
-        cause_all = np.concatenate(cause)
-        hit = flat[contacted_all] == SUSCEPTIBLE
-        contacted_all, cause_all = contacted_all[hit], cause_all[hit]
+        contacted = np.concatenate([contacted, particle * P + (rng.random(particle.size) * P).astype(np.int64)])
+        cause = np.concatenate([place, np.full(particle.size, C, dtype=np.int8)])
+        hit = np.flatnonzero(flat[contacted] == SUSCEPTIBLE)
+        contacted, cause = contacted[hit], cause[hit]
         # A person contacted more than once is infected once, by one of their contacts chosen uniformly.
-        order = np.argsort(contacted_all, kind="stable")
-        ranked = contacted_all[order]
+        order = np.argsort(contacted, kind="stable")
+        ranked = contacted[order]
         first = np.ones(ranked.size, dtype=bool)
         np.not_equal(ranked[1:], ranked[:-1], out=first[1:])
         starts = np.flatnonzero(first)
@@ -457,57 +485,54 @@ class IndividualModel(ObservedSeries):
         multi = np.flatnonzero(counts > 1)
         if multi.size:
             pick[multi] += (rng.random(multi.size) * counts[multi]).astype(np.intp)
-        cause = cause_all[order[pick]].astype(np.intp)
+        cause = cause[order[pick]].astype(np.intp)
         # 3. A day passes for everyone latent or infectious since the morning.
-        ends_latent = code == 0
-        ends_infectious = (code == SYMPTOMATIC_BASE) | (code == ASYMPTOMATIC_BASE)
+        ends_latent = np.flatnonzero(code == 0)
+        recovers = np.flatnonzero((code == SYMPTOMATIC_BASE) | (code == ASYMPTOMATIC_BASE))
+        recovered_silent = code[recovers] == ASYMPTOMATIC_BASE
         code -= _ONE
-        code[ends_infectious] = RECOVERED
+        code[recovers] = RECOVERED
         started = active[ends_latent]
-        started_person = started % P
-        code[ends_latent] = self._infectious_codes(started_person, rng)
+        started_code = self._infectious_codes(started % P, rng)
+        code[ends_latent] = started_code
         flat[active] = code
         # 4. The day's infected start their latent period (or, with 0 days, their infectious one).
-        infected_person = infected % P
         latent = self.latent(rng.random(infected.size))
         new_code = (latent - 1).astype(np.uint8)  # latent 0 wraps to 255 and is overwritten below
-        at_once = latent == 0
-        if at_once.any():
-            new_code[at_once] = self._infectious_codes(infected_person[at_once], rng)
+        at_once = np.flatnonzero(latent == 0)
+        if at_once.size:
+            new_code[at_once] = self._infectious_codes(infected[at_once] % P, rng)
         flat[infected] = new_code
         # 5. The day's counts.
-        self._tally(history, n, inf_particle, inf_person, silent, infected, infected_person, cause, new_code[at_once],
-                    infected[at_once], started, started_person, code[ends_latent], active[ends_infectious])
+        self._tally(history, n, infected, cause, np.concatenate([started, infected[at_once]]),
+                    np.concatenate([started_code, new_code[at_once]]), active[recovers], recovered_silent)
 
-    def _tally(self, history, n, inf_particle, inf_person, silent, infected, infected_person, cause,
-               at_once_code, at_once, started, started_person, started_code, recovered) -> None:
+    def _tally(self, history, n, infected, cause, onset, onset_code, recovered, recovered_silent) -> None:
+        """Count the day's events by particle, slot and band, and carry the stocks forward."""
         P, B, S = self.people, self.n_groups, len(self.slots)
         band = self.population.band
         slot = self._slot
-        parts_key = []
+        keys = []
 
-        def add(flat_index: np.ndarray, person: np.ndarray, slots: np.ndarray | int) -> None:
+        def add(flat_index: np.ndarray, slots: np.ndarray | int) -> None:
             particle = flat_index // P
-            parts_key.append((particle * S + slots) * B + band[person])
+            keys.append((particle * S + slots) * B + band[flat_index - particle * P])
 
-        add(infected, infected_person, slot["infection"])
-        add(infected, infected_person, self._cause0 + cause)
-        onset_codes = np.concatenate([started_code, at_once_code])
-        onset_flat = np.concatenate([started, at_once])
-        onset_person = onset_flat % P
-        add(onset_flat, onset_person, slot["infectious"])
-        symptomatic = onset_codes < ASYMPTOMATIC_BASE
-        add(onset_flat[symptomatic], onset_person[symptomatic], slot["onset"])
-        add(recovered, recovered % P, slot["recovery"])
-        days_slot = np.where(silent, slot["infectious_days.asymptomatic"], slot["infectious_days.symptomatic"])
-        parts_key.append((inf_particle * S + days_slot) * B + band[inf_person])
-        counts = np.bincount(np.concatenate(parts_key), minlength=n * S * B).reshape(n, S, B).astype(history.dtype)
+        add(infected, slot["infection"])
+        add(infected, self._cause0 + cause)
+        add(onset, slot["infectious"])
+        add(onset[onset_code < ASYMPTOMATIC_BASE], slot["onset"])
+        add(recovered, slot["recovery"])
+        add(recovered[recovered_silent], slot["recovery.asymptomatic"])
+        counts = np.bincount(np.concatenate(keys), minlength=n * S * B).reshape(n, S, B).astype(history.dtype)
         _shift_days(history)
-        infection, infectious, recovery = counts[:, slot["infection"]], counts[:, slot["infectious"]], counts[:, slot["recovery"]]
-        s_, e_, i_, r_ = self._stocks
+        infection, infectious, onsets = counts[:, slot["infection"]], counts[:, slot["infectious"]], counts[:, slot["onset"]]
+        recovery, silent_recovery = counts[:, slot["recovery"]], counts[:, slot["recovery.asymptomatic"]]
+        s_, e_, i_, a_, r_ = self._stocks
         counts[:, s_] = history[:, 1, s_] - infection
         counts[:, e_] = history[:, 1, e_] + infection - infectious
-        counts[:, i_] = history[:, 1, i_] + infectious - recovery
+        counts[:, i_] = history[:, 1, i_] + onsets - (recovery - silent_recovery)
+        counts[:, a_] = history[:, 1, a_] + (infectious - onsets) - silent_recovery
         counts[:, r_] = history[:, 1, r_] + recovery
         history[:, 0] = counts
 
@@ -520,14 +545,17 @@ class IndividualModel(ObservedSeries):
 
     # ------------------------------------------------------------- summaries
     def reproduction_number(self, particles: ParticleSet, t: float = 0.0, today: Any = None) -> np.ndarray:
-        """R_eff per particle over the last ``R_WINDOW`` days (see the module docstring)."""
-        h = particles.history[:, :R_WINDOW]
+        """R_eff per particle over the last ``R_WINDOW`` days (see the module docstring).
+
+        The infectious person-days of day d are the people infectious at the end of
+        day d - 1 (the stocks one row further back in the history)."""
+        h = particles.history
         slot = self._slot
-        infections = h[:, :, slot["infection"]].sum(axis=1).astype(float)  # (n, B)
-        caused = infections.sum(axis=1) - h[:, :, slot["infection.imported"]].sum(axis=(1, 2))
+        infections = h[:, :R_WINDOW, slot["infection"]].sum(axis=1).astype(float)  # (n, B)
+        caused = infections.sum(axis=1) - h[:, :R_WINDOW, slot["infection.imported"]].sum(axis=(1, 2))
         person_days = (
-            h[:, :, slot["infectious_days.symptomatic"]].sum(axis=(1, 2))
-            + self.relative * h[:, :, slot["infectious_days.asymptomatic"]].sum(axis=(1, 2))
+            h[:, 1 : R_WINDOW + 1, slot["stock.I"]].sum(axis=(1, 2))
+            + self.relative * h[:, 1 : R_WINDOW + 1, slot["stock.I_asymptomatic"]].sum(axis=(1, 2))
         )
         mix = np.where(infections.sum(axis=1, keepdims=True) > 0, infections, self.population.band_counts()[None, :])
         lifetime = (mix @ self.lifetime) / mix.sum(axis=1)
@@ -547,14 +575,17 @@ class IndividualModel(ObservedSeries):
 
     def stage_counts(self, particles: ParticleSet) -> np.ndarray:
         """(n, 4, bands) people susceptible, latent, infectious and recovered at the end of the cloud's day."""
-        return particles.history[:, 0, self._stocks, :]
+        s_, e_, i_, a_, r_ = self._stocks
+        h = particles.history[:, 0]
+        return np.stack([h[:, s_], h[:, e_], h[:, i_] + h[:, a_], h[:, r_]], axis=1)
 
     def describe(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
         out: dict[str, np.ndarray] = {}
         h = particles.history
-        for c, k in zip("SEIR", self._stocks):
+        stages = self.stage_counts(particles)
+        for c, name in enumerate("SEIR"):
             for g, band in enumerate(self.groups):
-                out[f"{c}[{band}]"] = h[:, 0, k, g]
+                out[f"{name}[{band}]"] = stages[:, c, g]
         for event in ("infection", "onset"):
             for g, band in enumerate(self.groups):
                 out[f"incidence.{event}[{band}]"] = h[:, 0, self._slot[event], g]

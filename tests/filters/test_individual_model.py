@@ -231,10 +231,10 @@ def test_r_eff_in_a_homogeneous_town_is_r0_times_the_susceptible_share():
     ps = model.initial(60, rng)
     model.advance(ps, 0, 25, rng)
     reff = model.reproduction_number(ps)
-    h = ps.history[:, :7]
-    # The window's susceptible share, weighted by each day's infectiousness.
-    s_start = ps.history[:, 1:8, model._slot["stock.S"], 0] / size
-    weight = h[:, :, model._slot["infectious_days.symptomatic"], 0] + r * h[:, :, model._slot["infectious_days.asymptomatic"], 0]
+    # Each window day's susceptible share and infectious person-days: the stocks at the end of the day before.
+    before = ps.history[:, 1:8]
+    s_start = before[:, :, model._slot["stock.S"], 0] / size
+    weight = before[:, :, model._slot["stock.I"], 0] + r * before[:, :, model._slot["stock.I_asymptomatic"], 0]
     share = (s_start * weight).sum(axis=1) / weight.sum(axis=1)
     expected_d = 1 / (1 - math.exp(-gamma))
     target = beta * expected_d * (1 - a + a * r) * share
@@ -276,7 +276,7 @@ def test_the_stage_counts_kept_day_by_day_match_a_recount_of_every_person(exampl
     ps = example.initial(40, rng)
     for day in range(0, 30, 3):
         example.advance(ps, day, day + 3, rng)
-        assert np.array_equal(example.stage_counts(ps), example._stage_counts(ps.states))
+        assert np.array_equal(ps.history[:, 0, example._stocks], example._stage_counts(ps.states))
     h = ps.history
     slot = example._slot
     by_place = h[:, :, [slot[f"infection.{p}"] for p in [*example.places, "imported"]]].sum(axis=2)
@@ -285,8 +285,9 @@ def test_the_stage_counts_kept_day_by_day_match_a_recount_of_every_person(exampl
 
 
 def test_infectious_person_days_are_the_people_infectious_each_morning(example):
-    """Bug caught: person-days counted after the day's transitions (recovered cases
-    still counted, or new cases counted a day early)."""
+    """R_eff's person-days of a day are the stocks at the end of the day before: the people
+    infectious that morning, with and without symptoms. Bug caught: recoveries taken from
+    the wrong stock (symptomatic and asymptomatic cases mixed up)."""
     rng = gen(6)
     ps = example.initial(20, rng)
     example.advance(ps, 0, 20, rng)
@@ -296,8 +297,9 @@ def test_infectious_person_days_are_the_people_infectious_each_morning(example):
     silent = (morning >= 190) & (morning < 253)
     band = example.population.band
     for b in range(example.n_groups):
-        assert np.array_equal(ps.history[:, 0, example._slot["infectious_days.symptomatic"], b], symptomatic[:, band == b].sum(axis=1))
-        assert np.array_equal(ps.history[:, 0, example._slot["infectious_days.asymptomatic"], b], silent[:, band == b].sum(axis=1))
+        assert np.array_equal(ps.history[:, 1, example._slot["stock.I"], b], symptomatic[:, band == b].sum(axis=1))
+        assert np.array_equal(ps.history[:, 1, example._slot["stock.I_asymptomatic"], b], silent[:, band == b].sum(axis=1))
+    assert silent.sum() > 50 and symptomatic.sum() > 50
 
 
 def test_series_read_onsets_through_the_reporting_delay(example):
@@ -327,7 +329,7 @@ def test_resampling_gathers_whole_towns_and_runs_are_reproducible(example):
     again = a.take(index)
     example.advance(again, 0, 15, rng2)
     assert np.array_equal(taken.states, again.states) and np.array_equal(taken.history, again.history)
-    assert np.array_equal(example.stage_counts(taken), example._stage_counts(taken.states))
+    assert np.array_equal(taken.history[:, 0, example._stocks], example._stage_counts(taken.states))
 
 
 def test_codes_hold_stage_and_days_left():
