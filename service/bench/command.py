@@ -17,6 +17,7 @@ from ..console import Progress
 from .common import SectionResult
 from .feeds import bench_feeds
 from .forecast import bench_forecast
+from .individual import bench_individual
 from .update import bench_update
 
 BENCH_FORMAT = 1
@@ -39,6 +40,7 @@ SECTIONS: dict[str, Callable[..., SectionResult]] = {
     "forecast": bench_forecast,
     "feeds": bench_feeds,
     "service_feeds": _bench_service_feeds,
+    "individual": bench_individual,
 }
 PRIMARY_SECTION = "update"
 
