@@ -25,7 +25,8 @@ from the file's own directory, so it works from any working directory),
 ``history.csv`` (the clean ED feed, final counts, in the history CSV format),
 ``lab_history.csv`` (the lab feed's vintages: a history CSV with an
 ``as_of`` column) and a copy of the example scenario file. Its closing lines
-are the next commands (report, checkpoint show, scenario, backtest,
+are the next commands (report, checkpoint show, scenario, a backtest of the
+ED history, a backtest of the lab vintages when a lab week is complete,
 calibrate), each runnable as printed from the directory the demo ran in.
 
 Why two history files: a history CSV holds one period per end date, and a
