@@ -6,7 +6,7 @@ replica is killed, against a local single-node Kafka broker.
     .venv/bin/python deploy/load.py --bootstrap 127.0.0.1:9092      # an already running local broker
 
 Everything stays on this machine: the broker is started from
-deploy/kafka/broker.py on 127.0.0.1 (or --bootstrap must be a loopback
+the packaged launcher (service.broker, `casecloud broker run`) on 127.0.0.1 (or --bootstrap must be a loopback
 address), the replicas are ``casecloud serve`` child processes sharing one
 checkpoint directory, and every wait has a deadline. Needs the casecloud
 package importable by this interpreter (run it with the project's venv).
@@ -40,7 +40,6 @@ from __future__ import annotations
 import argparse
 import asyncio
 import datetime as dt
-import importlib.util
 import ipaddress
 import json
 import os
@@ -53,17 +52,14 @@ import time
 import uuid
 from pathlib import Path
 
-HERE = Path(__file__).resolve().parent
 START = dt.date(2025, 9, 1)
 SESSION_TIMEOUT_MS = 6000
 
 
 def _broker_module():
-    spec = importlib.util.spec_from_file_location("casecloud_load_broker", HERE / "kafka" / "broker.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module
-    spec.loader.exec_module(module)
-    return module
+    from service.broker import launcher
+
+    return launcher
 
 
 def _loopback_only(bootstrap: str) -> str:

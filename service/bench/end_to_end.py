@@ -20,18 +20,16 @@ engine-alone run is reported beside it); target <= 0.25. The service writes
 each checkpoint in a worker thread while the next record is stepped.
 Also: checkpoint write time and size, restart-recovery time (a new registry
 loading and verifying the stream's newest checkpoint), memory per stream
-(particle arrays). The broker is the single-node KRaft launcher in
-``deploy/kafka/broker.py`` (a source checkout is needed), or an existing one
-given with ``bootstrap``.
+(particle arrays). The broker is the packaged single-node KRaft launcher
+(:mod:`service.broker`, ``casecloud broker run``; needs Java and, once, Maven),
+or an existing one given with ``bootstrap``.
 """
 
 from __future__ import annotations
 
 import asyncio
 import datetime as dt
-import importlib.util
 import statistics
-import sys
 import tempfile
 import time
 import uuid
@@ -52,7 +50,6 @@ __all__ = ["bench_service", "OVERHEAD_RATIO_MAX"]
 OVERHEAD_RATIO_MAX = 0.25
 STREAM = "bench-ed"
 START = dt.date(2025, 9, 1)
-BROKER_PY = Path(__file__).resolve().parents[2] / "deploy" / "kafka" / "broker.py"
 
 
 def _config(root: Path, particles: int, bootstrap: str, topic: str, spec: str = "seir_two_band") -> DeploymentConfig:
@@ -92,19 +89,6 @@ def _messages(days: int) -> list[bytes]:
                       "counts": {k: int(v) for k, v in o.values.items()}})
         for o in truth.observations
     ]
-
-
-def _load_broker_module():
-    if not BROKER_PY.is_file():
-        raise FileNotFoundError(
-            f"the broker launcher {BROKER_PY} is not here (installed without a source checkout?); "
-            "pass a running broker's address instead"
-        )
-    spec = importlib.util.spec_from_file_location("casecloud_bench_broker", BROKER_PY)
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module
-    spec.loader.exec_module(module)
-    return module
 
 
 def _engine_seconds(config: DeploymentConfig, messages: list[bytes], root: Path) -> list[float]:
@@ -190,7 +174,9 @@ def bench_service(
         broker = None
         if bootstrap is None:
             say("service: starting a local Kafka broker")
-            broker = _load_broker_module().KafkaBroker(root / "broker")
+            from ..broker import KafkaBroker
+
+            broker = KafkaBroker(root / "broker")
             broker.start(timeout=180)
             bootstrap = broker.bootstrap_servers
         try:
