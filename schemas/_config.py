@@ -124,6 +124,13 @@ class KafkaSettings(_Section):
     dead_letter_topic: str = "casecloud.dead-letters"
     client_id: str = "casecloud"
     session_timeout_ms: int = Field(default=10_000, ge=6_000, le=300_000)
+    publish_timeout_ms: int = Field(
+        default=40_000,
+        ge=1_000,
+        le=300_000,
+        description="how long one publish waits for the brokers' acknowledgement before it counts as failed "
+        "(the service then publishes again with a new producer, until the brokers answer)",
+    )
     security_protocol: Literal["PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL"] = "PLAINTEXT"
     sasl_mechanism: Literal["PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512"] | None = None
     sasl_username: str | None = None

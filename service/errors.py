@@ -6,6 +6,7 @@
      +-- ConfigError            deployment config or model spec unusable at start-up
      +-- TransportError         a transport could not receive, publish or commit
      |    +-- TransportAuthError    the broker refused our credentials
+     |    +-- TransportUnavailable  the broker is away or not ready now (the service retries)
      +-- StreamStateError       a stream's saved state cannot be used (see service.state)
 
 Each carries the context it knows (stream, topic, partition, offset).
@@ -14,7 +15,7 @@ Bad *input records* are not exceptions at this level: they become dead letters.
 
 from __future__ import annotations
 
-__all__ = ["ServiceError", "ConfigError", "TransportError", "TransportAuthError", "StreamStateError"]
+__all__ = ["ServiceError", "ConfigError", "TransportError", "TransportAuthError", "TransportUnavailable", "StreamStateError"]
 
 
 class ServiceError(Exception):
@@ -42,6 +43,12 @@ class TransportError(ServiceError):
 
 class TransportAuthError(TransportError):
     pass
+
+
+class TransportUnavailable(TransportError):
+    """The broker cannot be reached or is not ready (connection refused, timed out,
+    no partition leader): the same operation may succeed later, so the running
+    service waits and retries instead of ending."""
 
 
 class StreamStateError(ServiceError):

@@ -80,6 +80,11 @@ class Metrics:
             ["stream", "key"],
             registry=r,
         )
+        self.broker_reachable = Gauge(
+            "casecloud_broker_reachable",
+            "1 while the transport reaches its broker; 0 during an outage (records wait, nothing is committed)",
+            registry=r,
+        )
         self.late_values = Counter("casecloud_late_values", "Series values assimilated for a past period (inside the window)", ["stream"], registry=r)
         self.revisions = Counter("casecloud_revisions", "Revised totals whose increment was assimilated", ["stream"], registry=r)
         self.alerts = Counter("casecloud_alert_events", "Alert messages published", ["stream", "rule", "status"], registry=r)

@@ -77,6 +77,11 @@ class Transport:
         """Whether ``record`` may still be processed (False after a rebalance moved on)."""
         return True
 
+    async def check_connection(self) -> str | None:
+        """None while the transport can reach what it reads from and writes to,
+        else a short reason (the service's readiness reports it)."""
+        return None
+
     def lag(self) -> dict[tuple[str, int], int]:
         """Records waiting per (topic, partition), where the transport knows it."""
         return {}

@@ -6,6 +6,15 @@ where to resume each one (from its checkpoints), and the consumer seeks there.
 When partitions are revoked, the message in flight is finished first: the
 service holds :attr:`KafkaTransport.processing` while it steps, publishes and
 checkpoints, and revocation waits for it.
+
+Broker outages: errors that may pass (connection refused or lost, timeouts, no
+partition leader, an unknown topic) become :class:`TransportUnavailable`, which
+the running service answers by waiting and retrying (``service.runtime.app``);
+:meth:`KafkaTransport.check_connection` tells it whether the cluster answers.
+aiokafka logs the same error many times a second while a broker is away; its
+loggers get a filter that lets each distinct message through once a minute
+with a count of the repeats, and logs the normal wait for a topic or the group
+coordinator at start-up as INFO, not ERROR.
 """
 
 from __future__ import annotations
@@ -13,6 +22,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import ssl
+import time
 from collections.abc import AsyncIterator, Sequence
 from typing import Any
 
@@ -22,12 +32,83 @@ from aiokafka.conn import create_conn
 
 from schemas import KafkaSettings
 
-from ..errors import ConfigError, TransportAuthError, TransportError
+from ..errors import ConfigError, TransportAuthError, TransportError, TransportUnavailable
 from .base import AssignmentHook, RevocationHook, OutRecord, Record, Transport
 
-__all__ = ["KafkaTransport", "client_security", "stop_quietly", "translate_error"]
+__all__ = ["KafkaTransport", "client_security", "stop_quietly", "translate_error", "quiet_client_logs"]
 
 log = logging.getLogger("casecloud.kafka")
+
+# aiokafka's loggers (one per module; the client's is plain "aiokafka").
+_CLIENT_LOGGERS = (
+    "aiokafka",
+    "aiokafka.admin.client",
+    "aiokafka.cluster",
+    "aiokafka.conn",
+    "aiokafka.consumer.consumer",
+    "aiokafka.consumer.fetcher",
+    "aiokafka.consumer.group_coordinator",
+    "aiokafka.producer.producer",
+    "aiokafka.producer.sender",
+)
+
+
+def _start_up_wait(record: logging.LogRecord) -> bool:
+    """The normal wait at start-up: a topic being created, or the group
+    coordinator (its offsets topic) not ready yet."""
+    template = str(record.msg)
+    return template.startswith("Topic %s not found in cluster metadata") or (
+        template.startswith("Group Coordinator Request failed") and "GroupCoordinatorNotAvailable" in record.getMessage()
+    )
+
+
+class _ClientLogFilter(logging.Filter):
+    """Let each distinct aiokafka warning or error through once per ``window``
+    seconds (the first one, then one with the count of those held back), and
+    log the start-up waits (:func:`_start_up_wait`) as INFO."""
+
+    def __init__(self, window: float = 60.0, clock=time.monotonic) -> None:
+        super().__init__()
+        self.window, self.clock = window, clock
+        self._seen: dict[tuple[str, str], list[float]] = {}  # (logger, template) -> [shown at, held back]
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        template = str(record.msg)
+        if record.levelno >= logging.ERROR and _start_up_wait(record):
+            record.levelno, record.levelname = logging.INFO, "INFO"
+        if record.levelno < logging.WARNING:
+            return True
+        key = (record.name, template)
+        now = self.clock()
+        entry = self._seen.get(key)
+        if entry is not None and now - entry[0] < self.window:
+            entry[1] += 1
+            return False
+        held = int(entry[1]) if entry is not None else 0
+        self._seen[key] = [now, 0]
+        if held:
+            record.msg = f"{template} ({held} more like this in the last {now - entry[0]:.0f} s)"  # type: ignore[index]
+        return True
+
+
+_LOG_FILTER = _ClientLogFilter()
+
+
+def quiet_client_logs() -> None:
+    """Install the aiokafka log filter (idempotent)."""
+    for name in _CLIENT_LOGGERS:
+        logger = logging.getLogger(name)
+        if _LOG_FILTER not in logger.filters:
+            logger.addFilter(_LOG_FILTER)
+
+
+# An idempotent producer whose batches expired (broker away longer than the request
+# timeout) is refused for good: publish again with a new producer.
+_SEQUENCE_ERRORS: tuple[type[BaseException], ...] = (
+    kafka_errors.OutOfOrderSequenceNumber,
+    kafka_errors.UnknownProducerId,
+    kafka_errors.InvalidProducerEpoch,
+)
 
 _AUTH_ERRORS: tuple[type[BaseException], ...] = (
     kafka_errors.AuthenticationFailedError,
@@ -67,7 +148,13 @@ def translate_error(exc: BaseException, what: str, topic: str | None = None, *, 
             topic=topic,
         )
     if isinstance(exc, kafka_errors.KafkaConnectionError):
-        return TransportError(f"cannot reach the Kafka brokers to {what}: {exc}", topic=topic)
+        return TransportUnavailable(f"cannot reach the Kafka brokers to {what}: {exc}", topic=topic)
+    if getattr(exc, "retriable", False) or isinstance(exc, (kafka_errors.KafkaTimeoutError, asyncio.TimeoutError)):
+        return TransportUnavailable(
+            f"Kafka is not available to {what}: {type(exc).__name__}: {exc}; this may pass (broker restarting, "
+            f"leader election, a topic being created)",
+            topic=topic,
+        )
     return TransportError(f"Kafka error while trying to {what}: {type(exc).__name__}: {exc}", topic=topic)
 
 
@@ -156,6 +243,7 @@ class KafkaTransport(Transport):
         self.max_message_bytes = max_message_bytes
         self.consumer: AIOKafkaConsumer | None = None
         self.producer: AIOKafkaProducer | None = None
+        self._renew_producer = False  # a publish failed: the next one starts a new producer
         self.on_assign: AssignmentHook | None = None
         self.on_revoke: RevocationHook | None = None
         self.processing = asyncio.Lock()
@@ -193,17 +281,11 @@ class KafkaTransport(Transport):
 
     async def start(self, on_assign: AssignmentHook | None = None, on_revoke: RevocationHook | None = None) -> None:
         s = self.settings
+        quiet_client_logs()
         self.on_assign = on_assign
         self.on_revoke = on_revoke
         security = self._security()
-        self.producer = AIOKafkaProducer(
-            bootstrap_servers=s.bootstrap_servers,
-            client_id=s.client_id,
-            acks="all",
-            enable_idempotence=True,
-            max_request_size=max(self.max_message_bytes * 4, 1_048_576),
-            **security,
-        )
+        self.producer = self._make_producer()
         self.consumer = AIOKafkaConsumer(
             s.input_topic,
             bootstrap_servers=s.bootstrap_servers,
@@ -231,6 +313,34 @@ class KafkaTransport(Transport):
             if s.security_protocol != "PLAINTEXT":
                 what += f" over {s.security_protocol}"
             raise translate_error(cause, what, s.input_topic, tls="SSL" in s.security_protocol) from exc
+
+    def _make_producer(self) -> AIOKafkaProducer:
+        s = self.settings
+        return AIOKafkaProducer(
+            bootstrap_servers=s.bootstrap_servers,
+            client_id=s.client_id,
+            acks="all",
+            enable_idempotence=True,
+            request_timeout_ms=s.publish_timeout_ms,
+            max_request_size=max(self.max_message_bytes * 4, 1_048_576),
+            **self._security(),
+        )
+
+    async def _replace_producer(self) -> None:
+        """A new producer (a new producer id) after a failed publish. Batches that expired
+        while the broker was away leave a gap in an idempotent producer's sequence numbers,
+        which the broker answers with OutOfOrderSequenceNumber for good."""
+        old, self.producer = self.producer, None
+        await stop_quietly(old, what="producer of a failed publish")
+        producer = self._make_producer()
+        try:
+            await producer.start()
+        except Exception as exc:
+            await stop_quietly(producer, what="new producer")
+            raise translate_error(exc, f"reconnect the producer to {self.settings.bootstrap_servers}") from exc
+        self.producer = producer
+        self._renew_producer = False
+        log.info("publishing with a new producer after a failed publish")
 
     async def stop(self) -> None:
         await stop_quietly(self.consumer, self.producer)
@@ -268,13 +378,29 @@ class KafkaTransport(Transport):
         self._received_in = self.generation
         return record
 
+    async def check_connection(self, timeout: float = 5.0) -> str | None:
+        """None when the cluster answers a metadata request (over the producer's
+        connections), else why not."""
+        if self.producer is None:
+            return "no producer (being replaced after a failed publish)"
+        try:
+            await asyncio.wait_for(self.producer.client.fetch_all_metadata(), timeout)
+        except asyncio.TimeoutError:
+            return f"no metadata answer from {self.settings.bootstrap_servers} within {timeout:g} s"
+        except Exception as exc:  # the reason is what we report
+            return f"{type(exc).__name__}: {exc}"
+        return None
+
     def is_current(self, record: Record) -> bool:
         """False if a rebalance happened since ``record`` was received: it will
         be read again from the partition's resume point (by us or its new owner)."""
         return self._received_in == self.generation
 
     async def publish(self, records: Sequence[OutRecord]) -> None:
-        assert self.producer is not None, "transport not started"
+        assert self.consumer is not None, "transport not started"
+        if self._renew_producer or self.producer is None:
+            await self._replace_producer()
+        assert self.producer is not None
         try:
             futures = [
                 await self.producer.send(self._topics[r.kind], value=r.value, key=r.key, headers=list(r.headers))
@@ -282,7 +408,15 @@ class KafkaTransport(Transport):
             ]
             await asyncio.gather(*futures)
         except Exception as exc:
-            raise translate_error(exc, "publish results", None) from exc
+            error = translate_error(exc, "publish results", None)
+            if isinstance(exc, _SEQUENCE_ERRORS):
+                error = TransportUnavailable(
+                    f"the broker refused the producer's sequence after an outage ({type(exc).__name__}); "
+                    "publishing again with a new producer"
+                )
+            if isinstance(error, TransportUnavailable):
+                self._renew_producer = True
+            raise error from exc
 
     async def commit(self, record: Record) -> None:
         assert self.consumer is not None, "transport not started"

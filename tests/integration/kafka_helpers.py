@@ -50,10 +50,12 @@ def write_config(
     metrics_port: int | None = None,
     out_prefix: str | None = None,
     checkpoint_topic: str | None = None,
+    kafka_extra: str = "",
 ) -> Path:
     """A deployment config for ``casecloud serve`` over Kafka. With
     ``checkpoint_topic`` the checkpoints go to that compacted Kafka topic
-    (``checkpoint_store = "kafka"``) instead of ``checkpoint_dir``."""
+    (``checkpoint_store = "kafka"``) instead of ``checkpoint_dir``.
+    ``kafka_extra``: more lines for the ``[kafka]`` table."""
     out = out_prefix or topic
     store = f'checkpoint_store = "kafka"\ncheckpoint_topic = "{checkpoint_topic}"' if checkpoint_topic else ""
     stream_blocks = "\n".join(
@@ -96,6 +98,7 @@ estimates_topic = "{out}.estimates"
 alerts_topic = "{out}.alerts"
 dead_letter_topic = "{out}.dead-letters"
 session_timeout_ms = 6000
+{kafka_extra}
 {stream_blocks}
 """
     )
