@@ -13,6 +13,7 @@ from ._linear_gaussian import LocalLevelModel
 from ._individual import IndividualModel
 from ._families import build_model
 from ._population import Population, PopulationError, Venues, build_population
+from ._setting_effects import SettingEffects, SettingScenarioResult, compile_setting_interventions, run_setting_scenarios
 from ._model import Model
 from ._observation import Observation, ObservationError, delay_kernel
 from ._nowcast import NowcastEntry, nowcast
@@ -98,6 +99,10 @@ __all__ = [
     "PopulationError",
     "Venues",
     "build_population",
+    "SettingEffects",
+    "SettingScenarioResult",
+    "compile_setting_interventions",
+    "run_setting_scenarios",
     "Model",
     "ModelError",
     "ModelGuardError",

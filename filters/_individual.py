@@ -405,8 +405,10 @@ class IndividualModel(ObservedSeries):
         """Move every particle's town from day t0 to day t1 (in place).
 
         ``effects``: interventions compiled for this model
-        (:func:`filters.compile_setting_interventions`), consulted once per day;
-        with None every day runs (and draws) as without interventions.
+        (:func:`filters.compile_setting_interventions`), consulted once per day:
+        factors on the places' rates and a household quarantine. Days with no
+        factor in force and no one at home run the code (and draw the random
+        numbers) of a day without interventions; with None every day does.
         """
         if t1 < t0:
             raise ValueError(f"cannot advance backwards from day {t0} to day {t1}")
@@ -417,9 +419,19 @@ class IndividualModel(ObservedSeries):
             self._drift(particles.params, rng)
             # (n, places + 1) rate factors of the interventions in force (last column: importation), or None.
             factors = None if effects is None else effects.factors(day, particles.params.shape[0])
-            self._day(codes, particles.params, particles.history, rng, factors)
+            quarantine = None if effects is None else effects.quarantine(codes)
+            self._day(codes, particles.params, particles.history, rng, factors, quarantine, day)
 
-    def _day(self, codes: np.ndarray, params: np.ndarray, history: np.ndarray, rng: np.random.Generator, factors: np.ndarray | None) -> None:
+    def _day(
+        self,
+        codes: np.ndarray,
+        params: np.ndarray,
+        history: np.ndarray,
+        rng: np.random.Generator,
+        factors: np.ndarray | None,
+        quarantine: Any = None,
+        day: int = 0,
+    ) -> None:
         n, P = codes.shape
         C = len(self.places)
         flat = codes.reshape(-1)
@@ -439,6 +451,9 @@ class IndividualModel(ObservedSeries):
         silent = code[inf_at] >= ASYMPTOMATIC_BASE
         if self.relative != 1.0 and silent.any():
             rates[silent] *= self.relative
+        household = self.population.households.venue
+        if quarantine is not None:  # cases whose household stays at home infect no one outside it
+            rates[quarantine.home(inf_particle, household[inf_person], day), 1:] = 0.0
         total = rates[:, 0].copy()
         for k in range(1, C):
             total += rates[:, k]
@@ -462,6 +477,9 @@ class IndividualModel(ObservedSeries):
             row[community] = self._community_place + np.minimum((cdf <= rng.random(community.size)[:, None]).sum(axis=1), self.n_groups - 1)
         target = self._place_members[self._place_start[row] + (u[:, 1] * self._place_size[row]).astype(np.int64)]
         contacted = np.take(inf_particle, source) * P + target
+        if quarantine is not None:  # and no one outside it reaches them
+            out = (place > 0) & quarantine.home(np.take(inf_particle, source), household[target], day)
+            contacted, place = contacted[~out], place[~out]
         del who, row, target, u
         # Importation: Poisson(iota) contacts per particle from outside, each to a uniformly chosen person.
         iota = self._column(params, self._iota[1], self._iota[0])
@@ -469,7 +487,11 @@ class IndividualModel(ObservedSeries):
             iota = iota * factors[:, -1]  # the last column scales importation
         imports = rng.poisson(np.broadcast_to(np.maximum(iota, 0.0), (n,)))
         particle = np.repeat(np.arange(n), imports)
-        contacted = np.concatenate([contacted, particle * P + (rng.random(particle.size) * P).astype(np.int64)])
+        imported = (rng.random(particle.size) * P).astype(np.int64)
+        if quarantine is not None:
+            away = ~quarantine.home(particle, household[imported], day)
+            particle, imported = particle[away], imported[away]
+        contacted = np.concatenate([contacted, particle * P + imported])
         cause = np.concatenate([place, np.full(particle.size, C, dtype=np.int8)])
         hit = np.flatnonzero(flat[contacted] == SUSCEPTIBLE)
         contacted, cause = contacted[hit], cause[hit]
@@ -503,9 +525,13 @@ class IndividualModel(ObservedSeries):
         if at_once.size:
             new_code[at_once] = self._infectious_codes(infected[at_once] % P, rng)
         flat[infected] = new_code
+        onset = np.concatenate([started, infected[at_once]])
+        onset_code = np.concatenate([started_code, new_code[at_once]])
+        if quarantine is not None:
+            symptomatic = onset[onset_code < ASYMPTOMATIC_BASE]
+            quarantine.onsets(symptomatic // P, household[symptomatic % P], day)
         # 5. The day's counts.
-        self._tally(history, n, infected, cause, np.concatenate([started, infected[at_once]]),
-                    np.concatenate([started_code, new_code[at_once]]), active[recovers], recovered_silent)
+        self._tally(history, n, infected, cause, onset, onset_code, active[recovers], recovered_silent)
 
     def _tally(self, history, n, infected, cause, onset, onset_code, recovered, recovered_silent) -> None:
         """Count the day's events by particle, slot and band, and carry the stocks forward."""
