@@ -116,15 +116,20 @@ def test_required_alerts_are_defined():
         "casecloud_step_duration_seconds_bucket",
         "casecloud_checkpoint_failures_total",
         "casecloud_checkpoint_fallbacks_total",
+        "casecloud_broker_reachable",
     ):
         assert metric in joined, f"no alert on {metric}"
+    # what a stream is (daily, weekly) comes from labels the service sets, never from its id
+    assert not re.search(r"stream\s*[=!]~", joined), "a rule matches stream ids by pattern"
+    assert 'cadence="weekly"' in exprs["CasecloudWeeklyStreamStale"]
     assert "histogram_quantile(0.95" in exprs["CasecloudStepLatencyHigh"]
     assert "36 * 3600" in exprs["CasecloudStreamStale"]
     assert "< 0.05" in exprs["CasecloudEffectiveSampleSizeLow"]
     assert "(increase(casecloud_collapses_total[1h])) > 0" in exprs["CasecloudFilterCollapsed"]
     for name, rule in _alerts().items():
         assert rule["labels"]["severity"] in ("warning", "critical"), name
-        assert {"summary", "description", "runbook"} <= set(rule["annotations"]), name
+        assert {"summary", "description", "runbook_url"} <= set(rule["annotations"]), name
+        assert "runbook" not in rule["annotations"], f"{name}: the common annotation key is runbook_url"
 
 
 @pytest.mark.parametrize(
@@ -136,8 +141,10 @@ def test_required_alerts_are_defined():
             "",
         ),
         ("casecloud_consumer_lag_records) > 100", "casecloud_consumer_lag_records) > 1000"),
+        # weekly streams told by their id again, as before the cadence label
+        ('casecloud_stream_update_age_seconds{cadence!="weekly"}', 'casecloud_stream_update_age_seconds{stream!~".*weekly.*"}'),
     ],
-    ids=["stale-threshold", "collapse-new-series", "lag-threshold"],
+    ids=["stale-threshold", "collapse-new-series", "lag-threshold", "weekly-by-name"],
 )
 def test_rule_unit_tests_catch_a_changed_rule(tmp_path, before, after):
     """The unit tests are not vacuous: altering a rule makes them fail."""
@@ -200,7 +207,7 @@ def test_every_alert_has_a_runbook_section():
     text = RUNBOOK.read_text(encoding="utf-8")
     anchors = {h.strip().lower() for h in re.findall(r"^#{2,4}\s+(\S+)\s*$", text, re.M)}
     for name, rule in _alerts().items():
-        link = rule["annotations"]["runbook"]
+        link = rule["annotations"]["runbook_url"]
         assert link.startswith("deploy/RUNBOOK.md#"), link
         assert link.split("#", 1)[1] in anchors, f"{name}: runbook anchor {link} has no heading in {RUNBOOK}"
         assert re.search(rf"\b{name}\b", text), f"{name} is not described in {RUNBOOK}"

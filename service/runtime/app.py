@@ -68,6 +68,8 @@ class Service:
         self.store = store if store is not None else build_checkpoint_store(config)
         self.metrics = metrics or Metrics()
         self.registry = StreamRegistry(config, self.store)
+        for sid, model in self.registry.models.items():
+            self.metrics.set_cadence(sid, [s.weekly for s in model.series])
         self.processor = RecordProcessor(config, self.registry, self.store, self.metrics, today, earlier=transport.earlier)
         self.on_outcome = on_outcome
         self.pipeline = pipeline

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 from prometheus_client.core import GaugeMetricFamily
@@ -16,18 +16,21 @@ WRITE_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5
 
 
 class _AgeCollector:
-    """Seconds since each stream's last update, computed at scrape time."""
+    """Seconds since each stream's last update, computed at scrape time, labelled
+    with the stream's cadence (how often it is expected to be updated)."""
 
-    def __init__(self, last_update: dict[str, float], clock: Callable[[], float]) -> None:
-        self.last_update, self.clock = last_update, clock
+    def __init__(self, last_update: dict[str, float], clock: Callable[[], float], cadence: dict[str, str]) -> None:
+        self.last_update, self.clock, self.cadence = last_update, clock, cadence
 
     def collect(self):
         family = GaugeMetricFamily(
-            "casecloud_stream_update_age_seconds", "Seconds since the stream's cloud was last updated", labels=["stream"]
+            "casecloud_stream_update_age_seconds",
+            "Seconds since the stream's cloud was last updated (cadence: daily if any series of its model is daily, else weekly)",
+            labels=["stream", "cadence"],
         )
         now = self.clock()
         for stream, at in sorted(self.last_update.items()):
-            family.add_metric([stream], max(0.0, now - at))
+            family.add_metric([stream, self.cadence.get(stream, "daily")], max(0.0, now - at))
         yield family
 
 
@@ -89,13 +92,19 @@ class Metrics:
         self.revisions = Counter("casecloud_revisions", "Revised totals whose increment was assimilated", ["stream"], registry=r)
         self.alerts = Counter("casecloud_alert_events", "Alert messages published", ["stream", "rule", "status"], registry=r)
         self.last_update: dict[str, float] = {}
+        self.cadence: dict[str, str] = {}  # stream -> "daily" | "weekly" (see set_cadence)
         self.clock = clock
-        r.register(_AgeCollector(self.last_update, clock))
+        r.register(_AgeCollector(self.last_update, clock, self.cadence))
         self._lag_source: Callable[[], dict[tuple[str, int], int]] = dict
         r.register(_LagCollector(lambda: self._lag_source()))
 
     def watch_lag(self, source: Callable[[], dict[tuple[str, int], int]]) -> None:
         self._lag_source = source
+
+    def set_cadence(self, stream: str, weekly_series: Sequence[bool]) -> None:
+        """The stream's cadence label from its model's series: ``daily`` if any series is
+        daily (an update a day is expected), ``weekly`` if every series is weekly."""
+        self.cadence[stream] = "weekly" if weekly_series and all(weekly_series) else "daily"
 
     def mark_updated(self, stream: str) -> None:
         self.last_update[stream] = self.clock()

@@ -46,6 +46,7 @@ __all__ = ["RecordProcessor", "Outcome", "EVENT_NAMESPACE"]
 log = logging.getLogger("casecloud.processor")
 EVENT_NAMESPACE = uuid.UUID("0b8f5a4e-2d6c-5b1a-8e3f-7c9d0a1b2c3d")
 SCHEMA_BASE = "https://schemas.casecloud.invalid"
+EVENT_TYPE_PREFIX = "invalid.casecloud"  # reverse-DNS of casecloud.invalid, as SCHEMA_BASE
 
 
 @dataclass
@@ -98,12 +99,15 @@ def _event_id(kind: str, stream: str, period: str, step: int, extra: str = "") -
 
 
 def _headers(kind: str, event_id: str, stream: str | None, subject: str | None) -> tuple[tuple[str, bytes], ...]:
-    """CloudEvents 1.0 attributes for the Kafka binary content mode (no wall clock, so re-publishing is byte-identical)."""
+    """CloudEvents 1.0 attributes for the Kafka binary content mode (no wall clock, so re-publishing is byte-identical).
+
+    ``type`` is reverse-DNS of ``casecloud.invalid``, the reserved domain the schema ids use
+    too (RFC 2606): the project owns no domain, so it claims none."""
     h = [
         ("ce_specversion", b"1.0"),
         ("ce_id", event_id.encode()),
         ("ce_source", f"/casecloud/streams/{stream or 'unknown'}".encode()),
-        ("ce_type", f"org.casecloud.{kind}.v1".encode()),
+        ("ce_type", f"{EVENT_TYPE_PREFIX}.{kind}.v1".encode()),
         ("ce_dataschema", f"{SCHEMA_BASE}/{kind}.v1.json".encode()),
         ("content-type", b"application/json"),
     ]

@@ -333,5 +333,5 @@ def test_prometheus_scrapes_the_service_and_evaluates_the_rules(casecloud_servic
     assert [(a["labels"]["alertname"], a["labels"]["stream"], a["labels"]["severity"]) for a in alerts] == [
         ("CasecloudFilterCollapsed", COLLAPSING, "critical")
     ]
-    assert alerts[0]["annotations"]["runbook"] == "deploy/RUNBOOK.md#casecloudfiltercollapsed"
+    assert alerts[0]["annotations"]["runbook_url"] == "deploy/RUNBOOK.md#casecloudfiltercollapsed"
     assert service_proc.poll() is None and prom_proc.poll() is None

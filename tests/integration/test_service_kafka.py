@@ -166,7 +166,7 @@ def test_kcat_round_trip_with_dead_letter(kafka_broker, tmp_path):
         assert record["key"] == stream
         assert headers["ce_id"] == body["id"]
         assert headers["ce_specversion"] == "1.0"
-        assert headers["ce_type"] == "org.casecloud.estimate.v1"
+        assert headers["ce_type"] == "invalid.casecloud.estimate.v1"  # reverse-DNS of the .invalid schema domain
         assert headers["content-type"] == "application/json"
         assert body["stream"] == stream and body["quantities"]["I[all]"]["quantiles"]
     dead = wait_for(lambda: consume(f"{topic}.dead-letters", 1), 60, "dead letter via kcat", proc)

@@ -83,7 +83,9 @@ def run_case(harness, kit, bad: bytes, reason: str, mentions: list[str], before=
     for text in mentions:
         assert text in letter.message, f"dead-letter message {letter.message!r} should mention {text!r}"
     headers = dict(letters[0].headers)
-    assert headers["ce_type"] == b"org.casecloud.dead_letter.v1"
+    assert headers["ce_type"] == b"invalid.casecloud.dead_letter.v1"
+    # the type names the same unowned domain as the schema id (RFC 2606 .invalid)
+    assert headers["ce_dataschema"] == b"https://schemas.casecloud.invalid/dead_letter.v1.json"
     assert headers["ce_subject"] == reason.encode()
 
     # its offset is committed

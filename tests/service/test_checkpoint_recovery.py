@@ -98,4 +98,4 @@ def test_update_age_is_known_right_after_a_restart(tmp_path):
     metrics = Metrics(registry=registry, clock=lambda: 1_000_600.0)
     service = Service(config, MemoryTransport([]), metrics=metrics, today=lambda: dt.date(2026, 12, 1))
     asyncio.run(service.run(until_exhausted=True))
-    assert registry.get_sample_value("casecloud_stream_update_age_seconds", {"stream": STREAM}) == 600.0
+    assert registry.get_sample_value("casecloud_stream_update_age_seconds", {"stream": STREAM, "cadence": "daily"}) == 600.0

@@ -135,18 +135,41 @@ def test_update_age_uses_the_clock(kit, tmp_path):
     registry = CollectorRegistry()
     metrics = Metrics(registry=registry, clock=lambda: now["t"])
     name = "casecloud_stream_update_age_seconds"
-    assert registry.get_sample_value(name, {"stream": kit.STREAM}) is None  # nothing updated yet
+    assert registry.get_sample_value(name, {"stream": kit.STREAM, "cadence": "daily"}) is None  # nothing updated yet
 
     config = kit.make_config(tmp_path / "ck")
     service = Service(config, MemoryTransport([kit.obs(3)]), metrics=metrics, today=lambda: kit.TODAY)
     asyncio.run(service.run(until_exhausted=True))
-    assert registry.get_sample_value(name, {"stream": kit.STREAM}) == 0.0
+    assert registry.get_sample_value(name, {"stream": kit.STREAM, "cadence": "daily"}) == 0.0
     now["t"] = 1_012.5
-    assert registry.get_sample_value(name, {"stream": kit.STREAM}) == 12.5
+    assert registry.get_sample_value(name, {"stream": kit.STREAM, "cadence": "daily"}) == 12.5
     now["t"] = 1_090.0
-    assert registry.get_sample_value(name, {"stream": kit.STREAM}) == 90.0
+    assert registry.get_sample_value(name, {"stream": kit.STREAM, "cadence": "daily"}) == 90.0
     now["t"] = 900.0  # a clock that stepped back never reports a negative age
-    assert registry.get_sample_value(name, {"stream": kit.STREAM}) == 0.0
+    assert registry.get_sample_value(name, {"stream": kit.STREAM, "cadence": "daily"}) == 0.0
+
+
+def test_update_age_carries_the_cadence_of_the_stream_s_series(kit, tmp_path):
+    """The staleness alerts tell daily from weekly streams by this label, never by the
+    stream's name: weekly if every series of the model is weekly (seirs: weekly cases),
+    daily if any is daily (seir_two_band_lab: daily ED visits and weekly lab positives)."""
+    data = kit.config_dict(tmp_path / "ck")
+    base = data["streams"][0]
+    data["streams"] = [
+        {**base, "id": "lab-mixed", "model": "seir_two_band_lab", "particles": 50},
+        {**base, "id": "daily-looking-name-weekly", "model": "seirs", "particles": 50},
+        base,
+    ]
+    registry = CollectorRegistry()
+    metrics = Metrics(registry=registry, clock=lambda: 50.0)
+    service = Service(DeploymentConfig.model_validate(data), MemoryTransport([]), metrics=metrics, today=lambda: kit.TODAY)
+    for sid in ("lab-mixed", "daily-looking-name-weekly", kit.STREAM):
+        service.metrics.last_update[sid] = 20.0
+    samples = {
+        s.labels["stream"]: s.labels["cadence"]
+        for family in registry.collect() if family.name == "casecloud_stream_update_age_seconds" for s in family.samples
+    }
+    assert samples == {"lab-mixed": "daily", "daily-looking-name-weekly": "weekly", kit.STREAM: "daily"}
 
 
 def test_consumer_lag_from_a_lag_source():
