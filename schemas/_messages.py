@@ -296,6 +296,11 @@ class AlertMessage(_Message):
     status: Literal["raised", "updated", "cleared"]
     period: Period
     step: int
+    cloud_day: int | None = Field(
+        default=None,
+        description="model day the cloud stood at when the alert changed (a late or revised value can raise an "
+        "alert while naming an older period)",
+    )
     series: str
     threshold: float
     horizon_days: int

@@ -483,6 +483,7 @@ class RecordProcessor:
                 status=decision.status,
                 period=message.period,
                 step=result.step,
+                cloud_day=plan.time,
                 series=rule.series,
                 threshold=rule.threshold,
                 horizon_days=rule.horizon_days,

@@ -241,3 +241,14 @@ def test_what_was_known_survives_a_restart(tmp_path):
     again = Run(tmp_path, [*records, lab(6, 4, 8), lab(6, 6, 13)])
     assert again.reasons() == ["duplicate_period", None]
     assert again.runtime.known["lab_confirmed"] == {6: (6.0, 13)}
+
+
+def test_alerts_say_which_day_the_cloud_stood_at(tmp_path):
+    # Bug caught: an alert raised by a late value carrying only the late period, so a consumer
+    # dates the alert weeks too early.
+    records = [*warm_up(14), lab(6, 30, 14)]
+    run = Run(tmp_path, records, alerts=[{"name": "busy", "series": "ed_adult", "threshold": 2, "horizon_days": 7}])
+    alerts = [orjson.loads(r.value) for r in run.transport.published["alerts"]]
+    assert alerts, "the low threshold raises an alert"
+    by_step = {e.step: e.cloud_day for e in run.estimates()}
+    assert all(a["cloud_day"] == by_step[a["step"]] for a in alerts)
