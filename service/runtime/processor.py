@@ -313,9 +313,9 @@ class RecordProcessor:
         except ObservationError as exc:
             raise _Reject("bad_count", str(exc), message.stream) from None
         weekly_period = "W" in message.period
-        for name in message.counts:
+        for name, value in message.counts.items():
             series = runtime.model.series_named(name)
-            if series.weekly != weekly_period:
+            if value is not None and series.weekly != weekly_period:  # null: not reported, whatever its cadence
                 want = "an ISO week YYYY-Www" if series.weekly else "a day YYYY-MM-DD"
                 raise _Reject(
                     "cadence",

@@ -198,7 +198,7 @@ def test_report_dated_series_are_final_on_arrival(tmp_path):
         (lab(13, 3, 6), "bad_as_of"),  # known on day 6, before the week (days 7-13) began
         (msg(week_ending(13), {"lab_confirmed": 3}, (TODAY + dt.timedelta(days=3)).isoformat()), "bad_as_of"),
         (msg(week_ending(13), {"ed_child": 3}), "cadence"),  # a weekly period for a daily series
-        (msg(day(13), {"lab_confirmed": 3}), "cadence"),  # and the reverse
+        (msg(day(13), {"lab_confirmed": 3}), "cadence"),  # and the reverse (a null of the other cadence is fine: see below)
         (b'{"stream":"brackenford.district","period":"' + day(13).encode() + b'","counts":{"ed_child":3,"ed_child":4}}', "duplicate_series"),
         (msg(day(13), {"ed_child": 3}, "2026-02-30"), "schema"),  # not a calendar date
     ],
@@ -252,3 +252,11 @@ def test_alerts_say_which_day_the_cloud_stood_at(tmp_path):
     assert alerts, "the low threshold raises an alert"
     by_step = {e.step: e.cloud_day for e in run.estimates()}
     assert all(a["cloud_day"] == by_step[a["step"]] for a in alerts)
+
+
+def test_a_null_of_the_other_cadence_is_not_a_cadence_error(tmp_path):
+    # Bug caught: a history row that lists every series (null where not reported) refused
+    # because a weekly column is null on a daily row.
+    run = Run(tmp_path, [*warm_up(3), msg(day(4), {"ed_child": 3, "ed_adult": 9, "lab_confirmed": None})])
+    assert run.reasons()[-1] is None and run.counts["dead_letter"] == 0
+
