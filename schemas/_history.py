@@ -2,7 +2,9 @@
 
 The file has a header ``period,<series1>,<series2>,...`` and one row per
 period. ``period`` is a day ``YYYY-MM-DD`` or an ISO week ``YYYY-Www`` (the
-week ending on its Sunday); rows are strictly increasing in period. Counts
+week ending on its Sunday); rows are strictly increasing in period, except that
+a daily and a weekly row may end on the same Sunday (a stream with series of
+both cadences; the two become one observation). Counts
 are whole numbers from 0 to 10^9, or empty when the series was not reported
 that period (kept as ``None``: skipped, never read as zero).
 
@@ -142,6 +144,13 @@ class History:
                     f"{self.source or 'history'}: period {period!r} (ends {date.isoformat()}) is not after the "
                     f"model start {start.isoformat()}; allowed: periods ending after the start date"
                 )
+            if out and out[-1][0] == day:
+                # a daily and a weekly row ending on the same day: one observation of both
+                merged = out[-1][1]
+                for name, value in counts.items():
+                    if value is not None:
+                        merged[name] = value
+                continue
             out.append((day, dict(counts)))
         return out
 
@@ -206,10 +215,11 @@ def load_history(path: str | Path, allowed_series: list[str] | None = None) -> H
             date = parse_period(period)
         except ValueError as exc:
             raise SpecError(f"{source}:{line}: column 1 (period): {exc}") from None
-        if not vintaged and dates and date <= dates[-1]:
+        mixed = bool(dates) and date == dates[-1] and ("W" in period) != ("W" in periods[-1])
+        if not vintaged and dates and date <= dates[-1] and not mixed:
             raise SpecError(
                 f"{source}:{line}: column 1 (period): {period!r} is not after the previous row's "
-                f"{periods[-1]!r}; allowed: rows strictly increasing in period"
+                f"{periods[-1]!r}; allowed: rows strictly increasing in period (a daily and a weekly row may share a Sunday)"
             )
         counts: dict[str, int | None] = {}
         for col, (name, cell) in enumerate(zip(series, row[first - 1 :]), start=first):

@@ -82,3 +82,20 @@ def test_header_only_and_missing_file(tmp_path):
         load_history(write(tmp_path, "period,cases\n"))
     with pytest.raises(SpecError, match="cannot read"):
         load_history(tmp_path / "nope.csv")
+
+
+def test_daily_and_weekly_rows_may_share_a_sunday_and_become_one_observation(tmp_path):
+    # A stream with ED visits by day and lab positives by week. Bugs caught: such a file refused
+    # (the two rows end on the same day), or the Sunday kept as two observations of one day
+    # (the filter cannot step to the same day twice).
+    path = write(tmp_path, "period,ed,lab\n2025-10-04,3,\n2025-10-05,4,\n2025-W40,,17\n2025-10-06,5,\n")
+    h = load_history(path)
+    assert h.periods == ["2025-10-04", "2025-10-05", "2025-W40", "2025-10-06"]
+    assert h.by_day(dt.date(2025, 10, 1)) == [
+        (3, {"ed": 3, "lab": None}),
+        (4, {"ed": 4, "lab": 17}),
+        (5, {"ed": 5, "lab": None}),
+    ]
+    # two daily rows of one day are still refused
+    with pytest.raises(SpecError, match="strictly increasing"):
+        load_history(write(tmp_path, "period,ed,lab\n2025-10-05,4,\n2025-10-05,5,\n"))
