@@ -76,6 +76,8 @@ class _ClientLogFilter(logging.Filter):
         template = str(record.msg)
         if record.levelno >= logging.ERROR and _start_up_wait(record):
             record.levelno, record.levelname = logging.INFO, "INFO"
+            # the logger let it through as an ERROR: apply its level again to the INFO record
+            return logging.getLogger(record.name).isEnabledFor(logging.INFO)
         if record.levelno < logging.WARNING:
             return True
         key = (record.name, template)

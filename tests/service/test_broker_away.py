@@ -151,3 +151,43 @@ def test_an_error_that_waiting_cannot_cure_ends_the_run_without_a_commit(kit, tm
         asyncio.run(service.run(until_exhausted=True))
     assert transport.failed_publishes == 1
     assert transport.committed is None or transport.committed <= 3
+
+
+def test_aiokafka_errors_during_an_outage_are_let_through_once_a_minute():
+    """aiokafka logged ~41,000 'Unable connect to node' lines in a 15 s outage on our
+    machine; the filter on its loggers lets each distinct message through once per
+    window, then once more with the count held back."""
+    import logging
+
+    from service.transports.kafka import _ClientLogFilter
+
+    now = {"t": 0.0}
+    filt = _ClientLogFilter(window=60.0, clock=lambda: now["t"])
+    logger = logging.getLogger("aiokafka.test-outage")
+    logger.propagate = False
+    seen: list[logging.LogRecord] = []
+
+    class Keep(logging.Handler):
+        def emit(self, record):
+            seen.append(record)
+
+    logger.addHandler(Keep())
+    logger.addFilter(filt)
+    logger.setLevel(logging.WARNING)
+    for i in range(1000):
+        now["t"] = i * 0.01
+        logger.error("Unable connect to node with id %s: %s", 1, f"refused {i}")
+    now["t"] = 61.0
+    logger.error("Unable connect to node with id %s: %s", 1, "refused again")
+    assert [r.getMessage() for r in seen] == [
+        "Unable connect to node with id 1: refused 0",
+        "Unable connect to node with id 1: refused again (999 more like this in the last 61 s)",
+    ]
+
+    # the normal wait for a topic at start-up is INFO, so a WARNING logger drops it
+    seen.clear()
+    logger.error("Topic %s not found in cluster metadata", "casecloud.estimates")
+    assert seen == []
+    logger.setLevel(logging.INFO)
+    logger.error("Topic %s not found in cluster metadata", "casecloud.alerts")
+    assert [(r.levelname, r.getMessage()) for r in seen] == [("INFO", "Topic casecloud.alerts not found in cluster metadata")]
