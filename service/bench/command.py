@@ -16,6 +16,7 @@ import orjson
 from ..console import Progress
 from .common import SectionResult
 from .feeds import bench_feeds
+from .fleet import bench_fleet
 from .forecast import bench_forecast
 from .individual import bench_individual
 from .update import bench_update
@@ -41,6 +42,7 @@ SECTIONS: dict[str, Callable[..., SectionResult]] = {
     "feeds": bench_feeds,
     "service_feeds": _bench_service_feeds,
     "individual": bench_individual,
+    "fleet": bench_fleet,  # not in the default set: minutes, a broker and two serve processes
 }
 PRIMARY_SECTION = "update"
 
@@ -197,6 +199,11 @@ def run_bench_command(args: argparse.Namespace) -> int:
     if getattr(args, "kafka_bootstrap", None):
         options["service"] = {"bootstrap": args.kafka_bootstrap}
         options["service_feeds"] = {"bootstrap": args.kafka_bootstrap}
+        options["fleet"] = {"bootstrap": args.kafka_bootstrap}
+    fleet = {key: getattr(args, f"fleet_{name}") for name, key in (("streams", "streams"), ("particles", "stream_particles"),
+             ("rounds", "rounds")) if getattr(args, f"fleet_{name}", None) is not None}
+    if fleet:
+        options.setdefault("fleet", {}).update(fleet)
     try:
         with Progress("bench", len(sections), "sections") as shown:
             report = run_bench(particles=particles, repeats=repeats, sections=sections, options=options, shown=shown)
@@ -221,8 +228,12 @@ def add_bench_parser(sub) -> None:
         help="comma-separated workloads: update (filter step vs floor and naive loop), "
         "service (end to end through Kafka vs the engine alone), forecast (3 intervention scenarios "
         "with common random numbers vs their binomial floor), feeds (a late value and a revision vs "
-        "a daily step), service_feeds (the service section with three feeds per stream); "
+        "a daily step), service_feeds (the service section with three feeds per stream), fleet (a daily "
+        "round of many streams through two serve processes over Kafka; takes minutes, not in the default); "
         "default: update,service,forecast,feeds",
     )
-    bench.add_argument("--kafka-bootstrap", help="service section: use this broker instead of starting a local one")
+    bench.add_argument("--kafka-bootstrap", help="service, service_feeds and fleet sections: use this broker instead of starting a local one")
+    bench.add_argument("--fleet-streams", type=int, default=None, help="fleet section: streams (default 3000)")
+    bench.add_argument("--fleet-particles", type=int, default=None, help="fleet section: particles per stream (default 2000)")
+    bench.add_argument("--fleet-rounds", type=int, default=None, help="fleet section: daily rounds, the last one timed (default 2)")
     bench.set_defaults(handler=run_bench_command)
