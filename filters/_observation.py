@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import stats
-from scipy.special import gammaln
+from scipy.special import betaln, gammaln
 
 __all__ = [
     "Observation",
@@ -16,6 +16,7 @@ __all__ = [
     "poisson_loglik",
     "negbin_loglik",
     "binomial_loglik",
+    "betabinomial_loglik",
     "delay_kernel",
 ]
 
@@ -35,6 +36,8 @@ class Observation:
 
     time: int
     values: Mapping[str, float | None] = field(default_factory=dict)
+    # Number of tests behind each positivity series' positives (series name -> tests).
+    trials: Mapping[str, float | None] = field(default_factory=dict)
 
     def present(self) -> dict[str, float]:
         return {k: v for k, v in self.values.items() if v is not None}
@@ -84,6 +87,28 @@ def binomial_loglik(y: float, trials: np.ndarray, p: np.ndarray | float) -> np.n
     """log P(Y = y) for Y ~ Binomial(trials, p); -inf where y > trials."""
     # neginf must stay -inf: nan_to_num would otherwise turn it into -1.8e308.
     return np.nan_to_num(stats.binom.logpmf(y, trials, p), nan=-np.inf, neginf=-np.inf)
+
+
+def betabinomial_loglik(y: float, trials: np.ndarray | float, p: np.ndarray | float, concentration: np.ndarray | float) -> np.ndarray:
+    """log P(Y = y) for a beta-binomial out of ``trials`` with mean share ``p`` and concentration phi.
+
+    Y | q ~ Binomial(trials, q), q ~ Beta(p phi, (1 - p) phi): mean trials p, variance
+    trials p (1 - p) (1 + (trials - 1) / (phi + 1)); phi -> infinity is the binomial.
+    ``p`` of exactly 0 or 1 puts all mass on 0 or ``trials``; -inf where y > trials.
+    """
+    n = np.asarray(trials, dtype=float)
+    p = np.asarray(p, dtype=float)
+    phi = np.asarray(concentration, dtype=float)
+    a, b = p * phi, (1.0 - p) * phi
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = (
+            gammaln(n + 1.0) - math.lgamma(y + 1.0) - gammaln(n - y + 1.0)
+            + betaln(y + a, n - y + b) - betaln(a, b)
+        )
+    out = np.where(a == 0, np.where(y == 0, 0.0, -np.inf), out)
+    out = np.where(b == 0, np.where(y == n, 0.0, -np.inf), out)
+    out = np.where(y > n, -np.inf, out)
+    return np.where(np.isnan(out), -np.inf, out)
 
 
 def delay_kernel(dist: str, mean: float, sd: float, max_days: int) -> np.ndarray:

@@ -38,6 +38,8 @@ class Report:
     previous : the total already assimilated for this (series, period), 0 if none.
     previous_as_of : the day ``previous`` was known as of; ``None`` with
         ``previous == 0`` means nothing was assimilated before.
+    trials : the number of tests behind the positives of a positivity series
+        (``None`` for every other kind).
     """
 
     series: str
@@ -46,6 +48,7 @@ class Report:
     as_of: int | None = None
     previous: float = 0.0
     previous_as_of: int | None = None
+    trials: float | None = None
 
     @property
     def increment(self) -> float:

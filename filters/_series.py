@@ -27,6 +27,7 @@ from ._observation import (
     ObservationError,
     _negbin_loglik,
     _negbin_size_terms,
+    betabinomial_loglik,
     binomial_loglik,
     delay_kernel,
     poisson_loglik,
@@ -58,6 +59,8 @@ class _CompiledSeries:
     event_dated: bool = False
     # Reporting delay of an event-dated series: dist, (mean const, param), (sd const, param), max days.
     rdelay: tuple | None = None
+    # Positivity series: ((background const, param), (enrichment const, param)).
+    positivity: tuple | None = None
 
 
 def compile_series(
@@ -99,6 +102,12 @@ def compile_series(
                 (float(d.sd) if sd_p is None else 0.0, sd_p),
                 d.max_days,
             )
+        positivity = None
+        if getattr(s, "positivity", None) is not None:
+            bg, en = s.positivity.background, s.positivity.enrichment
+            bg_p = resolve(bg, f"series {s.name!r} positivity.background")
+            en_p = resolve(en, f"series {s.name!r} positivity.enrichment")
+            positivity = ((float(bg) if bg_p is None else 0.0, bg_p), (float(en) if en_p is None else 0.0, en_p))
         rep_param = resolve(s.reporting, f"series {s.name!r} reporting")
         disp_param = resolve(s.noise.dispersion, f"series {s.name!r} dispersion")
         out.append(
@@ -117,6 +126,7 @@ def compile_series(
                 kernel=kernel,
                 event_dated=s.dated_by == "event",
                 rdelay=rdelay,
+                positivity=positivity,
             )
         )
     return out, history_days
@@ -156,6 +166,29 @@ class ObservedSeries:
                     f"series {name!r} has count {value!r}; counts must be whole numbers "
                     f"between 0 and {MAX_COUNT:.0e}"
                 )
+            if self._series_by_name[name].kind == "positivity":
+                self._check_tests(name, v, observation.trials.get(name))
+        for name, tests in observation.trials.items():
+            s = self._series_by_name.get(name)
+            if tests is not None and (s is None or s.kind != "positivity"):
+                raise ObservationError(
+                    f"tests are given for series {name!r}, which is not a positivity series; "
+                    f"positivity series: {sorted(n for n, c in self._series_by_name.items() if c.kind == 'positivity')}"
+                )
+
+    @staticmethod
+    def _check_tests(name: str, positives: float, tests: float | None) -> None:
+        """Positives of a positivity series need a whole, positive number of tests at least as large."""
+        if tests is None:
+            raise ObservationError(f"series {name!r} counts positives out of tests, but no number of tests is given")
+        n = float(tests)
+        if not math.isfinite(n) or n < 1 or n != math.floor(n) or n > MAX_COUNT:
+            raise ObservationError(
+                f"series {name!r} has {tests!r} tests; tests must be whole numbers between 1 and {MAX_COUNT:.0e} "
+                "(the share positive of zero tests is undefined)"
+            )
+        if positives > n:
+            raise ObservationError(f"series {name!r} has {positives:g} positives out of {n:g} tests; positives cannot exceed tests")
 
     def series_named(self, name: str) -> _CompiledSeries:
         """The compiled series ``name`` (its kind, cadence, dating); KeyError if unknown."""
@@ -170,8 +203,14 @@ class ObservedSeries:
         checks = []
         if s.reporting_param is not None:
             checks.append(("reporting fraction", s.reporting_param, True, 1.0, "in [0, 1]"))
-        if s.noise == "negbin" and s.dispersion_param is not None:
+        if s.noise in ("negbin", "betabinomial") and s.dispersion_param is not None:
             checks.append(("dispersion", s.dispersion_param, False, None, "finite and > 0"))
+        if s.positivity is not None:
+            (_, bg_p), (_, en_p) = s.positivity
+            if bg_p is not None:
+                checks.append(("positivity background", bg_p, True, 1.0, "in [0, 1]"))
+            if en_p is not None:
+                checks.append(("positivity enrichment", en_p, False, None, "finite and > 0"))
         for what, col, allow_zero, upper, allowed in checks:
             values = particles.params[:, col]
             where = first_bad(values, allow_zero=allow_zero, upper=upper)
@@ -186,10 +225,33 @@ class ObservedSeries:
     def expected(self, particles: ParticleSet, series: str) -> np.ndarray:
         """Expected reported count (incidence) or true size (prevalence) per particle."""
         s = self._series_by_name[series]
+        if s.kind == "positivity":
+            return self._share_positive(particles, s)
         rho = self._column(particles.params, s.reporting_param, s.reporting)
         if s.kind == "prevalence":
             return rho * (particles.states[:, :, s.slot] @ s.group_mask)
         return rho * (self._daily(particles, s) @ s.weights)
+
+    def _share_positive(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
+        """Probability that a test of a positivity series is positive, per particle, (n,).
+
+        p = 1 - (1 - background) * exp(-enrichment * x), x the share of the
+        series' groups in its compartment (``schemas.Positivity``).
+        """
+        (bg, bg_p), (en, en_p) = s.positivity  # type: ignore[misc]
+        background = self._column(particles.params, bg_p, bg)
+        enrichment = self._column(particles.params, en_p, en)
+        mask = s.group_mask.astype(np.int64)
+        infected = particles.states[:, :, s.slot] @ mask
+        population = particles.states.sum(axis=2) @ mask
+        share = infected / np.maximum(population, 1)
+        return 1.0 - (1.0 - background) * np.exp(-enrichment * share)
+
+    def _positives_loglik(self, particles: ParticleSet, s: _CompiledSeries, y: float, tests: float) -> np.ndarray:
+        p = self._share_positive(particles, s)
+        if s.noise == "binomial":
+            return binomial_loglik(y, tests, p)
+        return betabinomial_loglik(y, tests, p, self._column(particles.params, s.dispersion_param, s.dispersion))
 
     def _daily(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0, length: int | None = None) -> np.ndarray:
         """Daily counts of the series' flow over its groups, (n, L) float, newest first.
@@ -224,6 +286,9 @@ class ObservedSeries:
             s = self._series_by_name[name]
             self._guard_series(particles, s)
             y = float(y)
+            if s.kind == "positivity":
+                total += self._positives_loglik(particles, s, y, float(observation.trials[name]))  # type: ignore[arg-type]
+                continue
             if s.noise == "binomial":
                 rho = self._column(particles.params, s.reporting_param, s.reporting)
                 total += binomial_loglik(y, self._trials(particles, s), rho)
@@ -242,7 +307,8 @@ class ObservedSeries:
     # ----------------------------------------------------- late and revised
     def check_report(self, report: Report, now: int) -> None:
         """Raise ObservationError if ``report`` cannot be assimilated by a cloud standing at day ``now``."""
-        self.check_observation(Observation(report.time, {report.series: report.value}))
+        trials = {report.series: report.trials} if report.trials is not None else {}
+        self.check_observation(Observation(report.time, {report.series: report.value}, trials))
         s = self._series_by_name[report.series]
         lag = now - report.time
         if lag < 0:
@@ -252,8 +318,8 @@ class ObservedSeries:
                 f"series {s.name!r}: day {report.time} is {lag} days before the cloud's day {now}; "
                 f"the assimilation window keeps {self.window_days} days"
             )
-        if s.kind == "prevalence" and lag > 0:
-            raise ObservationError(f"series {s.name!r} is a prevalence snapshot: only the cloud's current day can be assimilated")
+        if s.kind in ("prevalence", "positivity") and lag > 0:
+            raise ObservationError(f"series {s.name!r} is a {s.kind} snapshot: only the cloud's current day can be assimilated")
         if not s.event_dated and (report.previous or report.as_of is not None):
             raise ObservationError(f"series {s.name!r} is dated by report: its counts are final on arrival and are not revised")
         if report.increment < 0:
@@ -299,7 +365,7 @@ class ObservedSeries:
         """Expected value of the report's increment per particle (what it adds to what was known)."""
         s = self._series_by_name[report.series]
         lag = now - report.time
-        if s.kind == "prevalence":
+        if s.kind in ("prevalence", "positivity"):
             return self.expected(particles, s.name)
         if not s.event_dated:
             rho = self._column(particles.params, s.reporting_param, s.reporting)
@@ -320,6 +386,8 @@ class ObservedSeries:
         s = self._series_by_name[report.series]
         self._guard_series(particles, s)
         y = report.increment
+        if s.kind == "positivity":
+            return self._positives_loglik(particles, s, y, float(report.trials))  # type: ignore[arg-type]
         if s.noise == "binomial":
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             return binomial_loglik(y, self._trials(particles, s, now - report.time), rho)
@@ -341,11 +409,34 @@ class ObservedSeries:
             return rng.poisson(rng.gamma(k, np.where(mu > 0, mu, 0.0) / k))
         return rng.poisson(np.where(mu > 0, mu, 0.0))
 
+    def sample_positives(
+        self, particles: ParticleSet, series: str, tests: np.ndarray | int, rng: np.random.Generator
+    ) -> np.ndarray:
+        """Draw positives out of ``tests`` per particle for a positivity series (binomial or beta-binomial)."""
+        s = self._series_by_name[series]
+        if s.kind != "positivity":
+            raise ObservationError(f"series {series!r} is a {s.kind} series, not a positivity series")
+        self._guard_series(particles, s)
+        p = self._share_positive(particles, s)
+        if s.noise == "betabinomial":
+            phi = self._column(particles.params, s.dispersion_param, s.dispersion)
+            inner = (p > 0) & (p < 1)  # p of exactly 0 or 1 is a point mass, drawn as itself
+            p = np.where(inner, rng.beta(np.where(inner, p * phi, 1.0), np.where(inner, (1.0 - p) * phi, 1.0)), p)
+        return rng.binomial(tests, p)
+
     def sample_observation(self, particles: ParticleSet, rng: np.random.Generator) -> dict[str, np.ndarray]:
-        """Draw one set of reported counts per particle from the observation model."""
+        """Draw one set of reported counts per particle from the observation model.
+
+        A positivity series gives its share positive (the probability a test is
+        positive) without test-count noise: how many tests the future holds is not
+        known; :meth:`sample_positives` draws positives out of a given number.
+        """
         out = {}
         for s in self.series:
             self._guard_series(particles, s)
+            if s.kind == "positivity":
+                out[s.name] = self._share_positive(particles, s)
+                continue
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             if s.noise == "binomial":
                 out[s.name] = rng.binomial(self._trials(particles, s), rho)

@@ -69,6 +69,12 @@ class ObservationMessage(_Message):
     counts: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] = Field(
         min_length=1, max_length=64
     )
+    tests: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] | None = Field(
+        default=None,
+        max_length=64,
+        description="for positivity series only: the number of tests behind each series' positives in 'counts' "
+        "(a whole number of at least 1; null: not reported, with a null count)",
+    )
     as_of: Annotated[str, Field(pattern=r"^\d{4}-\d{2}-\d{2}$")] | None = Field(
         default=None,
         description="the date the counts are known as of (a data vintage); absent means final. "
@@ -329,6 +335,7 @@ class DeadLetter(_Message):
         "lower_total",
         "not_revisable",
         "conflicting_vintage",
+        "bad_tests",
         "needs_recovery",
         "model_error",
     ]

@@ -34,6 +34,7 @@ __all__ = [
     "Initial",
     "Delay",
     "Noise",
+    "Positivity",
     "Series",
     "ModelSpec",
     "load_model_spec",
@@ -206,23 +207,50 @@ class ReportingDelay(_Strict):
 
 
 class Noise(_Strict):
-    dist: Literal["poisson", "negbin", "binomial"]
+    dist: Literal["poisson", "negbin", "binomial", "betabinomial"]
     dispersion: float | Identifier | None = None
 
     @model_validator(mode="after")
     def _dispersion(self) -> "Noise":
         if self.dist == "negbin" and self.dispersion is None:
             raise ValueError("negbin noise needs 'dispersion' (size k, a number or parameter name)")
-        if self.dist != "negbin" and self.dispersion is not None:
+        if self.dist == "betabinomial" and self.dispersion is None:
+            raise ValueError(
+                "betabinomial noise needs 'dispersion' (concentration phi of the share positive, "
+                "a number or parameter name; larger is closer to binomial)"
+            )
+        if self.dist not in ("negbin", "betabinomial") and self.dispersion is not None:
             raise ValueError(f"{self.dist} noise takes no 'dispersion'")
         if isinstance(self.dispersion, float) and self.dispersion <= 0:
             raise ValueError(f"dispersion must be > 0, got {self.dispersion}")
         return self
 
 
+class Positivity(_Strict):
+    """How the share of tests that come back positive follows prevalence.
+
+    p = 1 - (1 - background) * exp(-enrichment * x), where x is the share of the
+    series' groups in its compartment: ``background`` is the positivity when no
+    one is infected (tests positive for other reasons), ``enrichment`` how much
+    likelier infected people are to be among the tested (p ~ background +
+    (1 - background) * enrichment * x while x is small). Numbers or parameter names.
+    """
+
+    background: float | Identifier
+    enrichment: float | Identifier
+
+    @model_validator(mode="after")
+    def _ranges(self) -> "Positivity":
+        if isinstance(self.background, float) and not 0 <= self.background < 1:
+            raise ValueError(f"positivity background must be in [0, 1), got {self.background}")
+        if isinstance(self.enrichment, float) and not 0 < self.enrichment < float("inf"):
+            raise ValueError(f"positivity enrichment must be finite and > 0, got {self.enrichment}")
+        return self
+
+
 class Series(_Strict):
     name: Identifier
-    kind: Literal["incidence", "prevalence"]
+    kind: Literal["incidence", "prevalence", "positivity"]
     flow: Identifier | None = None
     compartment: Identifier | None = None
     groups: list[Identifier] | None = None
@@ -236,9 +264,26 @@ class Series(_Strict):
         "'event': counted by event date (onset, specimen) and completed over time by reporting_delay",
     )
     reporting_delay: ReportingDelay | None = None
+    positivity: Positivity | None = Field(
+        default=None,
+        description="kind = 'positivity' only: positives out of the tests the message carries, "
+        "with a share positive that rises with the prevalence of 'compartment'",
+    )
 
     @model_validator(mode="after")
     def _target(self) -> "Series":
+        if self.kind == "positivity":
+            if self.compartment is None or self.flow is not None or self.positivity is None:
+                raise ValueError("a positivity series names a 'compartment' (whose prevalence drives it) and a 'positivity' table")
+            if self.noise.dist not in ("binomial", "betabinomial"):
+                raise ValueError(f"a positivity series counts positives out of tests: noise binomial or betabinomial, given {self.noise.dist!r}")
+            if self.delay is not None or self.cadence != "daily" or self.dated_by != "report" or self.reporting != 1.0:
+                raise ValueError("a positivity series is a daily snapshot: no 'delay' or 'reporting', cadence 'daily', dated by report")
+            return self
+        if self.positivity is not None:
+            raise ValueError("'positivity' belongs to series of kind = \"positivity\"")
+        if self.noise.dist == "betabinomial":
+            raise ValueError("betabinomial noise is for positivity series (positives out of tests)")
         if self.kind == "incidence" and (self.flow is None or self.compartment is not None):
             raise ValueError("an incidence series names a 'flow' (and no 'compartment')")
         if self.kind == "prevalence" and (self.compartment is None or self.flow is not None):
@@ -368,6 +413,8 @@ class ModelSpec(_Strict):
             refs = [(s.reporting, "reporting"), (s.noise.dispersion, "dispersion")]
             if s.reporting_delay is not None:
                 refs += [(s.reporting_delay.mean, "reporting_delay.mean"), (s.reporting_delay.sd, "reporting_delay.sd")]
+            if s.positivity is not None:
+                refs += [(s.positivity.background, "positivity.background"), (s.positivity.enrichment, "positivity.enrichment")]
             for ref, what in refs:
                 if isinstance(ref, str) and ref not in self.parameters and ref not in self.derived:
                     loc = {"reporting": ("series", i, "reporting"), "dispersion": ("series", i, "noise", "dispersion")}.get(
@@ -391,6 +438,8 @@ class ModelSpec(_Strict):
             if series.get("dated_by") == "report" and series.get("reporting_delay") is None:
                 series.pop("dated_by", None)
                 series.pop("reporting_delay", None)
+            if series.get("positivity") is None:
+                series.pop("positivity", None)
         canonical = orjson.dumps(data, option=orjson.OPT_SORT_KEYS)
         return hashlib.sha256(canonical).hexdigest()[:16]
 

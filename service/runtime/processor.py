@@ -129,6 +129,8 @@ def _classify(exc: ValidationError) -> tuple[str, str]:
             reason = "unknown_series"  # not even a valid series name, so no stream observes it
         elif e["loc"][:1] == ("counts",) and len(e["loc"]) > 1:
             reason = "bad_count"
+        elif e["loc"][:1] == ("tests",) and len(e["loc"]) > 1 and e["loc"][-1:] != ("[key]",):
+            reason = "bad_tests"
         elif e["loc"][:1] == ("period",) and e["type"] != "missing" and reason == "schema":  # absent: schema
             reason = "bad_period"
     return reason, "; ".join(parts)
@@ -308,8 +310,20 @@ class RecordProcessor:
         gap = runtime.day_of(date) - (runtime.last_day if runtime.last_day is not None else 0)
         if gap > self.config.service.max_gap_days:
             raise _Reject("bad_period", f"period {message.period} is {gap} days after the stream's latest period; at most {self.config.service.max_gap_days} allowed", message.stream)
+        tests = {k: v for k, v in (message.tests or {}).items() if v is not None}
+        kinds = {s.name: getattr(s, "kind", None) for s in runtime.model.series}
+        for name in sorted(set(tests) | set(message.counts)):
+            positivity = kinds.get(name) == "positivity"
+            if name in tests and not positivity:
+                raise _Reject("bad_tests", f"tests.{name}: {tests[name]} tests given, but {name!r} is not a positivity series of stream {message.stream!r}; tests belong to positivity series only", message.stream)
+            if positivity and message.counts.get(name) is not None:
+                n, y = tests.get(name), message.counts[name]
+                if not n:  # missing, null or zero: the share positive would be y / 0
+                    raise _Reject("bad_tests", f"tests.{name}: given {n!r}; series {name!r} is a positivity series and needs the number of tests behind its {y} positives, at least 1", message.stream)
+                if y > n:  # type: ignore[operator]
+                    raise _Reject("bad_tests", f"counts.{name}: {y} positives out of tests.{name} = {n} tests; positives cannot exceed tests", message.stream)
         try:
-            runtime.model.check_observation(Observation(0, dict(message.counts)))
+            runtime.model.check_observation(Observation(0, dict(message.counts), tests))
         except ObservationError as exc:
             raise _Reject("bad_count", str(exc), message.stream) from None
         weekly_period = "W" in message.period
@@ -363,11 +377,13 @@ class RecordProcessor:
                     f"values up to {model.window_days} days old are assimilated (assimilation window)",
                     sid,
                 )
-            if now is not None and day < now and series.kind == "prevalence":
-                raise _Reject("late", f"series {name!r} is a prevalence snapshot: only the latest period ({runtime.last_period}) can be assimilated", sid)
+            if now is not None and day < now and series.kind in ("prevalence", "positivity"):
+                raise _Reject("late", f"series {name!r} is a {series.kind} snapshot: only the latest period ({runtime.last_period}) can be assimilated", sid)
             known = runtime.known.get(name, {}).get(day)
             if known is None:
-                plan.reports.append(Report(name, day, float(value), as_of if series.event_dated else None))
+                trials = (message.tests or {}).get(name) if series.kind == "positivity" else None
+                plan.reports.append(Report(name, day, float(value), as_of if series.event_dated else None,
+                                           trials=None if trials is None else float(trials)))
                 plan.updates[name] = (float(value), as_of)
                 continue
             total, known_as_of = known
