@@ -24,7 +24,11 @@ resident memory (VmHWM) per replica and of the broker, each replica's CPU
 seconds in the timed round, checkpoint bytes per stream and in total, and the
 bound ``keep_checkpoints`` puts on them. With fewer than 3,000 streams the
 round time and the replicas' memory are also scaled linearly to 3,000 streams
-(labelled as such); the targets are judged on those.
+(labelled as such); the targets are judged on those. Memory is scaled above
+the resident size of a ``serve`` process with one stream (measured too,
+``serve_one_stream_rss_bytes``): every replica loads every configured stream
+at start and at each partition assignment, not only the streams of its own
+partitions, so a replica's memory grows with the fleet, not with its share.
 """
 
 from __future__ import annotations
@@ -147,7 +151,7 @@ def _cpu_seconds(pid: int) -> float:
 
 
 class _Replica:
-    def __init__(self, index: int, config: Path, root: Path) -> None:
+    def __init__(self, index: int | str, config: Path, root: Path) -> None:
         self.log = root / f"replica-{index}.log"
         self._out = open(self.log, "ab")
         env = dict(os.environ, PYTHONUNBUFFERED="1")
@@ -280,7 +284,7 @@ def bench_fleet(
         procs: list[_Replica] = []
         try:
             topic = f"fleet-{uuid.uuid4().hex[:8]}"
-            outputs = [(f"{topic}.{k}", 1) for k in ("estimates", "alerts", "dead-letters")]
+            outputs = [(f"{topic}.{k}", 1) for k in ("estimates", "alerts", "dead-letters", "one")]
             if bootstrap is None:
                 from ..broker import KafkaBroker
 
@@ -292,6 +296,21 @@ def bench_fleet(
                     broker.create_topic(name, parts)
             else:
                 asyncio.run(_create_topics(bootstrap, [(topic, partitions), *outputs]))
+            say("fleet: memory of a serve process with one stream")
+            one = root / "one.toml"
+            one.write_text(_config_text(root / "one", bootstrap, f"{topic}.one", 1, stream_particles, trajectories, keep_checkpoints))
+            probe = _Replica("one-stream", one, root)
+            try:
+                limit = time.monotonic() + 300
+                while probe.assigned() is None:
+                    probe.check_alive()
+                    if time.monotonic() > limit:
+                        raise RuntimeError(f"fleet: the one-stream serve process got no partition in 300 s ({probe.log})")
+                    time.sleep(0.2)
+                time.sleep(1.0)
+                one_stream = _proc_status(probe.proc.pid).get("VmRSS", 0)
+            finally:
+                probe.stop()
             config = root / "fleet.toml"
             config.write_text(_config_text(root, bootstrap, topic, streams, stream_particles, trajectories, keep_checkpoints))
             say(f"fleet: starting {replicas} replicas with {streams} streams configured")
@@ -324,8 +343,9 @@ def bench_fleet(
     scale = FLEET_STREAMS / streams
     peak = [s.get("VmHWM", 0) for s in status]
     base = [s.get("VmRSS", 0) for s in idle]
-    # memory beyond the idle process grows with the streams a replica holds
-    rss_at_fleet = [b + (p - b) * scale for b, p in zip(base, peak)]
+    # beyond a one-stream process, a replica's memory grows with the configured streams
+    # (all loaded at start) and with its share of them (stepped, forecast)
+    rss_at_fleet = [one_stream + (p - one_stream) * scale for p in peak]
     round_at_fleet = timed["seconds"] * scale
     bound = keep_checkpoints * usage["bytes_per_stream"] * streams
     figures: dict[str, Any] = {
@@ -340,6 +360,7 @@ def bench_fleet(
         "produce_seconds": timed["produce_seconds"],
         "replica_cpu_seconds_daily_round": timed["replica_cpu_seconds"],
         "replica_partitions": held,
+        "serve_one_stream_rss_bytes": one_stream,
         "replica_idle_rss_bytes": base,
         "replica_peak_rss_bytes": peak,
         "broker_peak_rss_bytes": broker_status.get("VmHWM"),

@@ -24,6 +24,7 @@ def test_the_fleet_section_runs_a_tiny_fleet_through_two_replicas(kafka_broker):
     assert f["daily_round_seconds"] == f["round_seconds"][-1]
     assert sorted(f["replica_partitions"]) == [1, 1]  # both processes took part
     assert len(f["replica_peak_rss_bytes"]) == 2 and all(b > 0 for b in f["replica_peak_rss_bytes"])
+    assert f["serve_one_stream_rss_bytes"] > 0
     # every stream was checkpointed once per round, within keep_checkpoints
     assert f["streams_with_checkpoints"] == 4
     assert f["checkpoint_files_per_stream_max"] == 2
