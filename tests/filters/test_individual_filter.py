@@ -55,10 +55,10 @@ MODEL = {
 
 @pytest.mark.slow
 def test_posterior_intervals_cover_the_truth_at_their_nominal_rate():
-    """Bugs caught: a likelihood reading the wrong band or event (the posterior
-    concentrates away from the truth), Liu-West jitter on the wrong scale, or
-    resampling that gathers states and parameters with different indices (the
-    latent infections and the rates stop covering)."""
+    """Bug caught: inference that drifts from the model the data came from, e.g. the step
+    updating a cached state array after resampling has replaced it (tried: the check
+    fails). Not caught, by construction: a mistake shared by simulation and inference
+    (such as a series reading the wrong event), which the model tests cover."""
     model = IndividualModel(schemas.validate_document(schemas.IndividualModelSpec, MODEL, "calibration"))
     replicates, days, particles, level = 60, 30, 2000, 0.9
     probs = np.array([(1 - level) / 2, (1 + level) / 2])
