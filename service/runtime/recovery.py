@@ -27,6 +27,8 @@ import asyncio
 import datetime as dt
 import os
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -149,9 +151,7 @@ def rebuild_stream(
 ) -> RebuildReport:
     """Rebuild the stream's cloud from its input (or ``history``) into a checkpoint."""
     _check_stream(config, stream_id)
-    owned = store is None
-    store = store if store is not None else build_checkpoint_store(config)
-    try:
+    with _opened(config, store) as store:
         existing = store.list(stream_id)
         if existing:
             raise ServiceError(
@@ -203,9 +203,20 @@ def rebuild_stream(
         report.step, report.period, report.positions = checkpoint.step, runtime.last_period, dict(runtime.positions)
         report.written = str(info.path)
         return report
+
+
+@contextmanager
+def _opened(config: DeploymentConfig, store: CheckpointStore | None) -> Iterator[CheckpointStore]:
+    """The store given, or the deployment's own, opened here and closed afterwards."""
+    if store is not None:
+        yield store
+        return
+    own = build_checkpoint_store(config)
+    try:
+        yield own
     finally:
-        close = getattr(store, "close", None)
-        if owned and close is not None:
+        close = getattr(own, "close", None)
+        if close is not None:
             close()
 
 
@@ -224,9 +235,7 @@ def reset_stream(
 ) -> dict[str, Any]:
     """Archive the stream's checkpoints and start it from the prior with the next new record."""
     _check_stream(config, stream_id)
-    owned = store is None
-    store = store if store is not None else build_checkpoint_store(config)
-    try:
+    with _opened(config, store) as store:
         infos = store.list(stream_id)
         stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
         target = (archive or Path(f"{config.service.checkpoint_dir}-archive")) / f"{encode_stream_id(stream_id)}-{stamp}"
@@ -258,10 +267,6 @@ def reset_stream(
         info = store.write(runtime.to_checkpoint())
         plan["written"] = str(info.path)
         return plan
-    finally:
-        close = getattr(store, "close", None)
-        if owned and close is not None:
-            close()
 
 
 def _load(config: DeploymentConfig, stream_id: str, store: CheckpointStore, model=None):
@@ -294,9 +299,7 @@ def resize_stream(
     _check_stream(config, stream_id)
     if not 10 <= particles <= 1_000_000:
         raise ServiceError(f"particles must be between 10 and 1000000, got {particles}")
-    owned = store is None
-    store = store if store is not None else build_checkpoint_store(config)
-    try:
+    with _opened(config, store) as store:
         _, runtime = _load(config, stream_id, store)
         pf = runtime.filter
         before, ess = pf.config.n_particles, pf.ess()
@@ -316,10 +319,6 @@ def resize_stream(
         info = store.write(runtime.to_checkpoint())
         plan["written"] = str(info.path)
         return plan
-    finally:
-        close = getattr(store, "close", None)
-        if owned and close is not None:
-            close()
 
 
 def migrate_stream(
@@ -341,9 +340,7 @@ def migrate_stream(
     from .streams import load_stream_model
 
     _check_stream(config, stream_id)
-    owned = store is None
-    store = store if store is not None else build_checkpoint_store(config)
-    try:
+    with _opened(config, store) as store:
         s = next(x for x in config.streams if x.id == stream_id)
         new_model = CompartmentalModel(load_stream_model(s), window_days=s.assimilation_window_days)
         loaded = store.load_latest(stream_id, expected_fingerprint=None)
@@ -434,10 +431,6 @@ def migrate_stream(
         info = store.write(runtime.to_checkpoint())
         plan["written"] = str(info.path)
         return plan
-    finally:
-        close = getattr(store, "close", None)
-        if owned and close is not None:
-            close()
 
 
 # -------------------------------------------------------------------- command
