@@ -131,6 +131,8 @@ def _classify(exc: ValidationError) -> tuple[str, str]:
             reason = "bad_count"
         elif e["loc"][:1] == ("tests",) and len(e["loc"]) > 1 and e["loc"][-1:] != ("[key]",):
             reason = "bad_tests"
+        elif e["loc"][:1] == ("concentrations",) and len(e["loc"]) > 1 and e["loc"][-1:] != ("[key]",):
+            reason = "bad_concentration"
         elif e["loc"][:1] == ("period",) and e["type"] != "missing" and reason == "schema":  # absent: schema
             reason = "bad_period"
     return reason, "; ".join(parts)
@@ -184,14 +186,12 @@ class RecordProcessor:
             plan = self._plan(runtime, message)
         except _Reject as rej:
             return await self._dead_letter(record, rej, publish)
+        for r in plan.skipped:
+            self.metrics.skipped.labels(runtime.id, r).inc()
         if plan.skipped and not plan.reports:
             # Nothing new: every value was known already (or is an older vintage).
             reason = "duplicate_period" if all(r == "duplicate_period" for r in plan.skipped) else plan.skipped[0]
-            for r in plan.skipped:
-                self.metrics.skipped.labels(runtime.id, r).inc()
             return Outcome("skipped", reason, runtime.id)
-        for r in plan.skipped:
-            self.metrics.skipped.labels(runtime.id, r).inc()
         try:
             outputs = await self._apply(runtime, message, plan, record)
         except ModelGuardError as exc:
@@ -298,7 +298,8 @@ class RecordProcessor:
                 message.stream,
             )
         known = {s.name for s in runtime.model.series}
-        unknown = sorted(set(message.counts) - known)
+        concentrations = {k: v for k, v in (message.concentrations or {}).items() if v is not None}
+        unknown = sorted((set(message.counts) | set(concentrations)) - known)
         if unknown:
             raise _Reject("unknown_series", f"series {unknown} are not observed by stream {message.stream!r}; allowed: {sorted(known)}", message.stream)
         date = parse_period(message.period)
@@ -312,6 +313,19 @@ class RecordProcessor:
             raise _Reject("bad_period", f"period {message.period} is {gap} days after the stream's latest period; at most {self.config.service.max_gap_days} allowed", message.stream)
         tests = {k: v for k, v in (message.tests or {}).items() if v is not None}
         kinds = {s.name: getattr(s, "kind", None) for s in runtime.model.series}
+        for name in sorted(message.counts):
+            if kinds[name] == "concentration":
+                raise _Reject("series_kind", f"counts.{name}: {name!r} is a concentration series; send its samples in 'concentrations' as {{\"value\": ..., \"lod\": ...}}, not as a count", message.stream)
+        for name in sorted(concentrations):
+            if kinds[name] != "concentration":
+                raise _Reject("series_kind", f"concentrations.{name}: {name!r} is a {kinds[name]} series of whole-number counts; send it in 'counts'", message.stream)
+        try:
+            runtime.model.check_observation(Observation(
+                0, {k: message.values()[k] for k in concentrations},
+                limits={k: c.lod for k, c in concentrations.items()}, flows={k: c.flow for k, c in concentrations.items()},
+            ))
+        except ObservationError as exc:
+            raise _Reject("bad_concentration", f"concentrations: {exc}", message.stream) from None
         for name in sorted(set(tests) | set(message.counts)):
             positivity = kinds.get(name) == "positivity"
             if name in tests and not positivity:
@@ -327,7 +341,7 @@ class RecordProcessor:
         except ObservationError as exc:
             raise _Reject("bad_count", str(exc), message.stream) from None
         weekly_period = "W" in message.period
-        for name, value in message.counts.items():
+        for name, value in message.values().items():
             series = runtime.model.series_named(name)
             if value is not None and series.weekly != weekly_period:  # null: not reported, whatever its cadence
                 want = "an ISO week YYYY-Www" if series.weekly else "a day YYYY-MM-DD"
@@ -360,13 +374,14 @@ class RecordProcessor:
         now = runtime.last_day
         time = day if now is None else max(now, day)
         plan = _Plan(day=day, time=time, reports=[], updates={}, skipped=[])
-        if now is not None and day <= now and all(v is None for v in message.counts.values()):
+        values = message.values()
+        if now is not None and day <= now and all(v is None for v in values.values()):
             # Nothing reported: an empty message can only move the cloud forward.
             if day == now:
                 plan.skipped.append("duplicate_period")
                 return plan
             raise _Reject("late", f"period {message.period} is older than the stream's latest period {runtime.last_period} and carries no value", sid)
-        for name, value in message.counts.items():
+        for name, value in values.items():
             if value is None:
                 continue
             series = model.series_named(name)
@@ -382,8 +397,10 @@ class RecordProcessor:
             known = runtime.known.get(name, {}).get(day)
             if known is None:
                 trials = (message.tests or {}).get(name) if series.kind == "positivity" else None
+                sample = (message.concentrations or {}).get(name)
                 plan.reports.append(Report(name, day, float(value), as_of if series.event_dated else None,
-                                           trials=None if trials is None else float(trials)))
+                                           trials=None if trials is None else float(trials),
+                                           lod=sample.lod if sample else None, flow=sample.flow if sample else None))
                 plan.updates[name] = (float(value), as_of)
                 continue
             total, known_as_of = known
