@@ -188,7 +188,7 @@ class CompartmentalModel(ObservedSeries):
             if flows:
                 self._outflows.append((c, flows))
         # Observed flows get a slot in the incidence history.
-        observed = [s.flow for s in spec.series if s.kind == "incidence"]
+        observed = [s.flow for s in spec.series if s.kind in ("incidence", "concentration")]
         flow_names = [f.name for f in spec.flows]
         self._observed_flows = [flow_names.index(f) for f in dict.fromkeys(observed)]
         self._slot_of = {flow_names[f]: k for k, f in enumerate(self._observed_flows)}
@@ -204,7 +204,7 @@ class CompartmentalModel(ObservedSeries):
         self.series, history_days = compile_series(
             spec.series,
             self.groups,
-            lambda s: self._slot_of[s.flow] if s.kind == "incidence" else self._cidx[s.compartment],
+            lambda s: self._slot_of[s.flow] if s.flow is not None else self._cidx[s.compartment],
             self._resolve,
             self.window_days,
         )

@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import stats
-from scipy.special import betaln, gammaln
+from scipy.special import betaln, gammaln, log_ndtr
 
 __all__ = [
     "Observation",
@@ -17,6 +17,7 @@ __all__ = [
     "negbin_loglik",
     "binomial_loglik",
     "betabinomial_loglik",
+    "log_concentration_loglik",
     "delay_kernel",
 ]
 
@@ -38,6 +39,10 @@ class Observation:
     values: Mapping[str, float | None] = field(default_factory=dict)
     # Number of tests behind each positivity series' positives (series name -> tests).
     trials: Mapping[str, float | None] = field(default_factory=dict)
+    # Concentration series: the lab's limit of detection and the sample's flow (series name -> value).
+    # A value below its limit (0 included) is censored: only "below the limit" is known.
+    limits: Mapping[str, float | None] = field(default_factory=dict)
+    flows: Mapping[str, float | None] = field(default_factory=dict)
 
     def present(self) -> dict[str, float]:
         return {k: v for k, v in self.values.items() if v is not None}
@@ -108,6 +113,37 @@ def betabinomial_loglik(y: float, trials: np.ndarray | float, p: np.ndarray | fl
     out = np.where(a == 0, np.where(y == 0, 0.0, -np.inf), out)
     out = np.where(b == 0, np.where(y == n, 0.0, -np.inf), out)
     out = np.where(y > n, -np.inf, out)
+    return np.where(np.isnan(out), -np.inf, out)
+
+
+def log_concentration_loglik(
+    y: float,
+    mean: np.ndarray,
+    sd: np.ndarray | float,
+    lod: float | None = None,
+    df: float | None = None,
+) -> np.ndarray:
+    """Log-likelihood of a measured concentration ``y`` whose logarithm is centred on log(mean).
+
+    log Y = log(mean) + sd * e, with e standard normal (log-normal noise: the median
+    of Y is ``mean``) or Student-t with ``df`` degrees of freedom. A value below the
+    limit of detection ``lod`` (0 included) is censored: its likelihood is
+    P(Y < lod). Otherwise the density of Y at y (in y's units, so the term -log y
+    is included). ``mean`` of 0 (nothing shed) explains only values below a limit.
+    """
+    mean = np.asarray(mean, dtype=float)
+    sd = np.asarray(sd, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_mean = np.log(mean)
+        if lod is not None and y < lod:
+            z = (math.log(lod) - log_mean) / sd
+            out = log_ndtr(z) if df is None else stats.t.logcdf(z, df)
+        else:
+            if y <= 0:
+                raise ValueError(f"a concentration of {y!r} has no logarithm; a value below the limit of detection needs the limit")
+            z = (math.log(y) - log_mean) / sd
+            base = -0.5 * z * z - 0.5 * math.log(2 * math.pi) if df is None else stats.t.logpdf(z, df)
+            out = base - np.log(sd) - math.log(y)
     return np.where(np.isnan(out), -np.inf, out)
 
 

@@ -40,6 +40,8 @@ class Report:
         ``previous == 0`` means nothing was assimilated before.
     trials : the number of tests behind the positives of a positivity series
         (``None`` for every other kind).
+    lod, flow : a concentration series' limit of detection and the sample's flow
+        (``None``: not given). A value below ``lod`` is censored.
     """
 
     series: str
@@ -49,6 +51,8 @@ class Report:
     previous: float = 0.0
     previous_as_of: int | None = None
     trials: float | None = None
+    lod: float | None = None
+    flow: float | None = None
 
     @property
     def increment(self) -> float:

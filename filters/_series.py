@@ -29,6 +29,7 @@ from ._observation import (
     _negbin_size_terms,
     betabinomial_loglik,
     binomial_loglik,
+    log_concentration_loglik,
     delay_kernel,
     poisson_loglik,
 )
@@ -61,6 +62,23 @@ class _CompiledSeries:
     rdelay: tuple | None = None
     # Positivity series: ((background const, param), (enrichment const, param)).
     positivity: tuple | None = None
+    # Concentration series (see _Shedding); None for every other kind.
+    shedding: "_Shedding | None" = None
+
+
+@dataclass(frozen=True)
+class _Shedding:
+    """A compiled concentration series: profile over days since infection, scale, catchment, noise."""
+
+    dist: str
+    mean: tuple  # (const, param column or None)
+    sd: tuple
+    max_days: int
+    scale: tuple
+    catchment: float
+    reference_flow: float | None
+    noise_sd: tuple
+    df: float | None
 
 
 def compile_series(
@@ -108,6 +126,30 @@ def compile_series(
             bg_p = resolve(bg, f"series {s.name!r} positivity.background")
             en_p = resolve(en, f"series {s.name!r} positivity.enrichment")
             positivity = ((float(bg) if bg_p is None else 0.0, bg_p), (float(en) if en_p is None else 0.0, en_p))
+        shedding = None
+        if getattr(s, "shedding", None) is not None:
+            sh = s.shedding
+
+            def ref(value: Any, where: str) -> tuple:
+                col = resolve(value, f"series {s.name!r} {where}")
+                return (float(value) if col is None else 0.0, col)
+
+            shedding = _Shedding(
+                dist=sh.dist,
+                mean=ref(sh.mean, "shedding.mean"),
+                sd=ref(sh.sd, "shedding.sd"),
+                max_days=sh.max_days,
+                scale=ref(s.scale, "scale"),
+                catchment=1.0 if s.catchment is None else float(s.catchment),
+                reference_flow=s.reference_flow,
+                noise_sd=ref(s.noise.sd, "noise.sd"),
+                df=s.noise.df,
+            )
+            if shedding.mean[1] is None and shedding.sd[1] is None:
+                weights = delay_kernel(sh.dist, shedding.mean[0], shedding.sd[0], sh.max_days)
+            else:  # estimated profile: one per particle (see ObservedSeries._shedding_weights)
+                weights = np.full(sh.max_days + 1, np.nan)
+            history_days = max(history_days, weights.size + window_days)
         rep_param = resolve(s.reporting, f"series {s.name!r} reporting")
         disp_param = resolve(s.noise.dispersion, f"series {s.name!r} dispersion")
         out.append(
@@ -127,6 +169,7 @@ def compile_series(
                 event_dated=s.dated_by == "event",
                 rdelay=rdelay,
                 positivity=positivity,
+                shedding=shedding,
             )
         )
     return out, history_days
@@ -161,6 +204,15 @@ class ObservedSeries:
             if value is None:
                 continue
             v = float(value)
+            if self._series_by_name[name].kind == "concentration":
+                flow = observation.flows.get(name)
+                self._check_concentration(name, v, observation.limits.get(name), flow)
+                if flow is not None and self._series_by_name[name].shedding.reference_flow is None:  # type: ignore[union-attr]
+                    raise ObservationError(
+                        f"series {name!r} is given a sample flow of {flow!r}, but its spec sets no reference_flow; "
+                        "set reference_flow (the flow its scale refers to) to use the flow, or leave the flow out"
+                    )
+                continue
             if not math.isfinite(v) or v < 0 or v != math.floor(v) or v > MAX_COUNT:
                 raise ObservationError(
                     f"series {name!r} has count {value!r}; counts must be whole numbers "
@@ -175,6 +227,30 @@ class ObservedSeries:
                     f"tests are given for series {name!r}, which is not a positivity series; "
                     f"positivity series: {sorted(n for n, c in self._series_by_name.items() if c.kind == 'positivity')}"
                 )
+
+        for what, given in (("limit of detection", observation.limits), ("flow", observation.flows)):
+            for name, extra in given.items():
+                s = self._series_by_name.get(name)
+                if extra is not None and (s is None or s.kind != "concentration"):
+                    raise ObservationError(
+                        f"a {what} is given for series {name!r}, which is not a concentration series; "
+                        f"concentration series: {sorted(n for n, c in self._series_by_name.items() if c.kind == 'concentration')}"
+                    )
+
+    @staticmethod
+    def _check_concentration(name: str, value: float, lod: float | None, flow: float | None) -> None:
+        """A concentration is finite and >= 0; 0 (or any value below the limit) needs a positive limit."""
+        if not math.isfinite(value) or value < 0:
+            raise ObservationError(f"series {name!r} has concentration {value!r}; it must be finite and >= 0")
+        if lod is not None and not (math.isfinite(lod) and lod > 0):
+            raise ObservationError(f"series {name!r} has limit of detection {lod!r}; it must be finite and > 0")
+        if flow is not None and not (math.isfinite(flow) and flow > 0):
+            raise ObservationError(f"series {name!r} has flow {flow!r}; it must be finite and > 0")
+        if value == 0 and lod is None:
+            raise ObservationError(
+                f"series {name!r} has concentration 0 without a limit of detection; a concentration is never "
+                "read as zero: send the lab's limit, and the value counts as below it"
+            )
 
     @staticmethod
     def _check_tests(name: str, positives: float, tests: float | None) -> None:
@@ -205,6 +281,11 @@ class ObservedSeries:
             checks.append(("reporting fraction", s.reporting_param, True, 1.0, "in [0, 1]"))
         if s.noise in ("negbin", "betabinomial") and s.dispersion_param is not None:
             checks.append(("dispersion", s.dispersion_param, False, None, "finite and > 0"))
+        if s.shedding is not None:
+            sh = s.shedding
+            for what, (_, col) in (("shedding mean", sh.mean), ("shedding sd", sh.sd), ("scale", sh.scale), ("noise sd", sh.noise_sd)):
+                if col is not None:
+                    checks.append((what, col, False, None, "finite and > 0"))
         if s.positivity is not None:
             (_, bg_p), (_, en_p) = s.positivity
             if bg_p is not None:
@@ -227,6 +308,8 @@ class ObservedSeries:
         s = self._series_by_name[series]
         if s.kind == "positivity":
             return self._share_positive(particles, s)
+        if s.kind == "concentration":
+            return self._concentration_mean(particles, s)
         rho = self._column(particles.params, s.reporting_param, s.reporting)
         if s.kind == "prevalence":
             return rho * (particles.states[:, :, s.slot] @ s.group_mask)
@@ -246,6 +329,40 @@ class ObservedSeries:
         population = particles.states.sum(axis=2) @ mask
         share = infected / np.maximum(population, 1)
         return 1.0 - (1.0 - background) * np.exp(-enrichment * share)
+
+    def _shedding_weights(self, particles: ParticleSet, s: _CompiledSeries) -> np.ndarray:
+        """Shedding profile over days 0..max_days since infection: (K,) fixed, or (n, K) when
+        its mean or sd is a parameter (discretised as ``delay_kernel``, per particle)."""
+        sh = s.shedding
+        assert sh is not None
+        if sh.mean[1] is None and sh.sd[1] is None:
+            return s.weights
+        mean = self._column(particles.params, sh.mean[1], sh.mean[0])
+        sd = self._column(particles.params, sh.sd[1], sh.sd[0])
+        return np.diff(reporting_cdf(sh.dist, mean, sd, sh.max_days), axis=1, prepend=0.0)
+
+    def _concentration_mean(self, particles: ParticleSet, s: _CompiledSeries, lag: int = 0, flow: float | None = None) -> np.ndarray:
+        """Expected (median) concentration per particle, (n,): scale * catchment * sum_d w_d I(t - d),
+        I the series' daily new infections (days since infection d = 0..max_days), diluted by
+        reference_flow / flow when the sample's flow is given and the series has a reference flow."""
+        sh = s.shedding
+        assert sh is not None
+        w = self._shedding_weights(particles, s)
+        daily = self._daily(particles, s, lag, w.shape[-1])
+        load = daily @ w if w.ndim == 1 else np.einsum("nk,nk->n", daily, w)
+        mean = self._column(particles.params, sh.scale[1], sh.scale[0]) * sh.catchment * load
+        if flow is not None and sh.reference_flow is not None:
+            mean = mean * (sh.reference_flow / flow)
+        return mean
+
+    def _concentration_loglik(
+        self, particles: ParticleSet, s: _CompiledSeries, y: float, lod: float | None, flow: float | None, lag: int = 0
+    ) -> np.ndarray:
+        sh = s.shedding
+        assert sh is not None
+        mean = self._concentration_mean(particles, s, lag, flow)
+        sd = self._column(particles.params, sh.noise_sd[1], sh.noise_sd[0])
+        return log_concentration_loglik(y, mean, sd, lod, sh.df)
 
     def _positives_loglik(self, particles: ParticleSet, s: _CompiledSeries, y: float, tests: float) -> np.ndarray:
         p = self._share_positive(particles, s)
@@ -289,6 +406,9 @@ class ObservedSeries:
             if s.kind == "positivity":
                 total += self._positives_loglik(particles, s, y, float(observation.trials[name]))  # type: ignore[arg-type]
                 continue
+            if s.kind == "concentration":
+                total += self._concentration_loglik(particles, s, y, observation.limits.get(name), observation.flows.get(name))
+                continue
             if s.noise == "binomial":
                 rho = self._column(particles.params, s.reporting_param, s.reporting)
                 total += binomial_loglik(y, self._trials(particles, s), rho)
@@ -308,7 +428,9 @@ class ObservedSeries:
     def check_report(self, report: Report, now: int) -> None:
         """Raise ObservationError if ``report`` cannot be assimilated by a cloud standing at day ``now``."""
         trials = {report.series: report.trials} if report.trials is not None else {}
-        self.check_observation(Observation(report.time, {report.series: report.value}, trials))
+        limits = {report.series: report.lod} if report.lod is not None else {}
+        flows = {report.series: report.flow} if report.flow is not None else {}
+        self.check_observation(Observation(report.time, {report.series: report.value}, trials, limits, flows))
         s = self._series_by_name[report.series]
         lag = now - report.time
         if lag < 0:
@@ -367,6 +489,8 @@ class ObservedSeries:
         lag = now - report.time
         if s.kind in ("prevalence", "positivity"):
             return self.expected(particles, s.name)
+        if s.kind == "concentration":
+            return self._concentration_mean(particles, s, lag, report.flow)
         if not s.event_dated:
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             return rho * (self._daily(particles, s, lag) @ s.weights)
@@ -388,6 +512,8 @@ class ObservedSeries:
         y = report.increment
         if s.kind == "positivity":
             return self._positives_loglik(particles, s, y, float(report.trials))  # type: ignore[arg-type]
+        if s.kind == "concentration":
+            return self._concentration_loglik(particles, s, y, report.lod, report.flow, now - report.time)
         if s.noise == "binomial":
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             return binomial_loglik(y, self._trials(particles, s, now - report.time), rho)
@@ -424,6 +550,19 @@ class ObservedSeries:
             p = np.where(inner, rng.beta(np.where(inner, p * phi, 1.0), np.where(inner, (1.0 - p) * phi, 1.0)), p)
         return rng.binomial(tests, p)
 
+    def sample_concentration(self, particles: ParticleSet, series: str, rng: np.random.Generator) -> np.ndarray:
+        """Draw a measured concentration per particle (at the reference flow, uncensored): the
+        expected value times exp(sd * e), e standard normal or Student-t."""
+        s = self._series_by_name[series]
+        sh = s.shedding
+        if sh is None:
+            raise ObservationError(f"series {series!r} is a {s.kind} series, not a concentration series")
+        self._guard_series(particles, s)
+        mean = self._concentration_mean(particles, s)
+        sd = self._column(particles.params, sh.noise_sd[1], sh.noise_sd[0])
+        e = rng.standard_normal(particles.size) if sh.df is None else rng.standard_t(sh.df, particles.size)
+        return mean * np.exp(sd * e)
+
     def sample_observation(self, particles: ParticleSet, rng: np.random.Generator) -> dict[str, np.ndarray]:
         """Draw one set of reported counts per particle from the observation model.
 
@@ -436,6 +575,9 @@ class ObservedSeries:
             self._guard_series(particles, s)
             if s.kind == "positivity":
                 out[s.name] = self._share_positive(particles, s)
+                continue
+            if s.kind == "concentration":
+                out[s.name] = self.sample_concentration(particles, s.name, rng)
                 continue
             rho = self._column(particles.params, s.reporting_param, s.reporting)
             if s.noise == "binomial":

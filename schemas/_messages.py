@@ -15,6 +15,7 @@ from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, Va
 __all__ = [
     "StreamId",
     "ObservationMessage",
+    "Concentration",
     "QuantitySummary",
     "Exceedance",
     "EstimateMessage",
@@ -56,6 +57,32 @@ class _Message(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+Measurement = Annotated[float, Field(strict=True, allow_inf_nan=False)]
+
+
+class Concentration(_Message):
+    """One sample of a concentration series (e.g. gene copies per litre of wastewater).
+
+    ``value`` null means "not detected": the lab's ``lod`` is then required and only
+    "below the limit" is known; a value below ``lod`` is read the same way. A value of
+    0 is never taken as a measurement (it needs ``lod`` too). ``flow`` is the sample's
+    flow (e.g. litres per day), used by series with a ``reference_flow``.
+    """
+
+    value: Annotated[Measurement, Field(ge=0)] | None = Field(description="the measured concentration; null: not detected")
+    lod: Annotated[Measurement, Field(gt=0)] | None = Field(default=None, description="the laboratory's limit of detection")
+    flow: Annotated[Measurement, Field(gt=0)] | None = Field(default=None, description="the sample's flow")
+
+    @model_validator(mode="after")
+    def _detected(self) -> "Concentration":
+        if (self.value is None or self.value == 0) and self.lod is None:
+            raise ValueError(
+                f"value {self.value!r} without 'lod': a sample that is not detected (null or 0) needs the lab's "
+                "limit of detection, since only 'below the limit' is known"
+            )
+        return self
+
+
 class ObservationMessage(_Message):
     """Aggregated counts for one stream and one period.
 
@@ -67,7 +94,12 @@ class ObservationMessage(_Message):
     stream: StreamId
     period: Period = Field(description="a day YYYY-MM-DD, or an ISO week YYYY-Www for weekly streams")
     counts: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] = Field(
-        min_length=1, max_length=64
+        max_length=64, description="count series: whole numbers (at least 1 entry here or in 'concentrations')"
+    )
+    concentrations: dict[SeriesName, Concentration | None] | None = Field(
+        default=None,
+        max_length=64,
+        description="concentration series (e.g. wastewater): one sample each, {value, lod, flow}; null: not reported",
     )
     tests: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] | None = Field(
         default=None,
@@ -83,6 +115,24 @@ class ObservationMessage(_Message):
     metadata: dict[Annotated[str, Field(max_length=64)], Annotated[str, Field(max_length=256)]] = Field(
         default_factory=dict, max_length=16
     )
+
+    @model_validator(mode="after")
+    def _some_series(self) -> "ObservationMessage":
+        concentrations = self.concentrations or {}
+        if not self.counts and not concentrations:
+            raise ValueError("counts: at least 1 series is needed, in 'counts' or 'concentrations' (given none)")
+        both = sorted(set(self.counts) & set(concentrations))
+        if both:
+            raise ValueError(f"series {both} are given both in 'counts' and in 'concentrations'; a series is one or the other")
+        return self
+
+    def values(self) -> dict[str, float | None]:
+        """Every series value of the message: counts, and concentrations (a sample not detected
+        as 0.0: below its limit); None: not reported."""
+        out: dict[str, float | None] = dict(self.counts)
+        for name, c in (self.concentrations or {}).items():
+            out[name] = None if c is None else (0.0 if c.value is None else c.value)
+        return out
 
     @field_validator("period")
     @classmethod
@@ -336,6 +386,8 @@ class DeadLetter(_Message):
         "not_revisable",
         "conflicting_vintage",
         "bad_tests",
+        "bad_concentration",
+        "series_kind",
         "needs_recovery",
         "model_error",
     ]

@@ -35,6 +35,7 @@ __all__ = [
     "Delay",
     "Noise",
     "Positivity",
+    "Shedding",
     "Series",
     "ModelSpec",
     "load_model_spec",
@@ -207,11 +208,26 @@ class ReportingDelay(_Strict):
 
 
 class Noise(_Strict):
-    dist: Literal["poisson", "negbin", "binomial", "betabinomial"]
+    dist: Literal["poisson", "negbin", "binomial", "betabinomial", "lognormal", "studentt"]
     dispersion: float | Identifier | None = None
+    sd: float | Identifier | None = Field(
+        default=None, description="lognormal / studentt (concentration series): spread of the log measurement"
+    )
+    df: float | None = Field(default=None, description="studentt: degrees of freedom (> 0; smaller, heavier tails)")
 
     @model_validator(mode="after")
     def _dispersion(self) -> "Noise":
+        continuous = self.dist in ("lognormal", "studentt")
+        if continuous and self.sd is None:
+            raise ValueError(f"{self.dist} noise needs 'sd' (spread on the log scale, a number or parameter name)")
+        if not continuous and self.sd is not None:
+            raise ValueError(f"{self.dist} noise takes no 'sd' (it is for lognormal and studentt noise)")
+        if isinstance(self.sd, float) and not 0 < self.sd < float("inf"):
+            raise ValueError(f"sd must be finite and > 0, got {self.sd}")
+        if (self.dist == "studentt") != (self.df is not None):
+            raise ValueError("studentt noise needs 'df' (degrees of freedom), and only studentt noise takes it")
+        if self.df is not None and not 0 < self.df < float("inf"):
+            raise ValueError(f"df must be finite and > 0, got {self.df}")
         if self.dist == "negbin" and self.dispersion is None:
             raise ValueError("negbin noise needs 'dispersion' (size k, a number or parameter name)")
         if self.dist == "betabinomial" and self.dispersion is None:
@@ -248,9 +264,28 @@ class Positivity(_Strict):
         return self
 
 
+class Shedding(_Strict):
+    """How much an infection sheds into wastewater on each day since infection: a gamma
+    or log-normal profile discretised to days 0..max_days (as a ``delay``), whose
+    ``mean`` and ``sd`` (days) are numbers or parameter names (estimated)."""
+
+    dist: Literal["gamma", "lognormal"]
+    mean: float | Identifier
+    sd: float | Identifier
+    max_days: int = Field(ge=1, le=60)
+
+    @model_validator(mode="after")
+    def _positive(self) -> "Shedding":
+        for key in ("mean", "sd"):
+            value = getattr(self, key)
+            if isinstance(value, float) and not 0 < value <= 60:
+                raise ValueError(f"shedding {key} must be in (0, 60] days, got {value}")
+        return self
+
+
 class Series(_Strict):
     name: Identifier
-    kind: Literal["incidence", "prevalence", "positivity"]
+    kind: Literal["incidence", "prevalence", "positivity", "concentration"]
     flow: Identifier | None = None
     compartment: Identifier | None = None
     groups: list[Identifier] | None = None
@@ -270,8 +305,45 @@ class Series(_Strict):
         "with a share positive that rises with the prevalence of 'compartment'",
     )
 
+    shedding: Shedding | None = Field(
+        default=None, description="kind = 'concentration' only: shedding-load profile over days since infection"
+    )
+    scale: float | Identifier | None = Field(
+        default=None,
+        description="kind = 'concentration' only: measurement units per shedding-weighted infection in the "
+        "catchment (a number, or a static or drifting parameter)",
+    )
+    catchment: float | None = Field(
+        default=None, description="kind = 'concentration' only: the site's share of the series' population, (0, 1]"
+    )
+    reference_flow: float | None = Field(
+        default=None,
+        description="kind = 'concentration' only: the flow (e.g. litres per day) 'scale' refers to; a sample's "
+        "flow in the message then dilutes the expected value by reference_flow / flow",
+    )
+
     @model_validator(mode="after")
     def _target(self) -> "Series":
+        ww = {"shedding": self.shedding, "scale": self.scale, "catchment": self.catchment, "reference_flow": self.reference_flow}
+        if self.kind == "concentration":
+            if self.flow is None or self.compartment is not None or self.shedding is None or self.scale is None:
+                raise ValueError("a concentration series names the infection 'flow' it sheds from, a 'shedding' profile and a 'scale'")
+            if self.noise.dist not in ("lognormal", "studentt"):
+                raise ValueError(f"a concentration series is continuous: noise lognormal or studentt, given {self.noise.dist!r}")
+            if self.delay is not None or self.cadence != "daily" or self.dated_by != "report" or self.reporting != 1.0:
+                raise ValueError("a concentration series is daily and dated by report: no 'delay' or 'reporting' (the shedding profile and 'scale' take their place)")
+            if self.catchment is not None and not 0 < self.catchment <= 1:
+                raise ValueError(f"catchment must be a share of the population in (0, 1], got {self.catchment}")
+            if isinstance(self.scale, float) and not 0 < self.scale < float("inf"):
+                raise ValueError(f"scale must be finite and > 0, got {self.scale}")
+            if self.reference_flow is not None and not 0 < self.reference_flow < float("inf"):
+                raise ValueError(f"reference_flow must be finite and > 0, got {self.reference_flow}")
+            return self
+        given = sorted(k for k, v in ww.items() if v is not None)
+        if given:
+            raise ValueError(f"{given} belong to series of kind = \"concentration\"")
+        if self.noise.dist in ("lognormal", "studentt"):
+            raise ValueError(f"{self.noise.dist} noise is for concentration series (counts take poisson, negbin or binomial)")
         if self.kind == "positivity":
             if self.compartment is None or self.flow is not None or self.positivity is None:
                 raise ValueError("a positivity series names a 'compartment' (whose prevalence drives it) and a 'positivity' table")
@@ -415,6 +487,9 @@ class ModelSpec(_Strict):
                 refs += [(s.reporting_delay.mean, "reporting_delay.mean"), (s.reporting_delay.sd, "reporting_delay.sd")]
             if s.positivity is not None:
                 refs += [(s.positivity.background, "positivity.background"), (s.positivity.enrichment, "positivity.enrichment")]
+            if s.shedding is not None:
+                refs += [(s.shedding.mean, "shedding.mean"), (s.shedding.sd, "shedding.sd")]
+            refs += [(s.scale, "scale"), (s.noise.sd, "noise.sd")]
             for ref, what in refs:
                 if isinstance(ref, str) and ref not in self.parameters and ref not in self.derived:
                     loc = {"reporting": ("series", i, "reporting"), "dispersion": ("series", i, "noise", "dispersion")}.get(
@@ -438,8 +513,12 @@ class ModelSpec(_Strict):
             if series.get("dated_by") == "report" and series.get("reporting_delay") is None:
                 series.pop("dated_by", None)
                 series.pop("reporting_delay", None)
-            if series.get("positivity") is None:
-                series.pop("positivity", None)
+            for key in ("positivity", "shedding", "scale", "catchment", "reference_flow"):
+                if series.get(key) is None:
+                    series.pop(key, None)
+            for key in ("sd", "df"):
+                if series["noise"].get(key) is None:
+                    series["noise"].pop(key, None)
         canonical = orjson.dumps(data, option=orjson.OPT_SORT_KEYS)
         return hashlib.sha256(canonical).hexdigest()[:16]
 

@@ -67,7 +67,7 @@ def test_valid_observation_satisfies_the_exported_schema():
     assert schema["type"] == "object"
     assert set(schema["required"]) == {"stream", "period", "counts"}
     assert schema["additionalProperties"] is False
-    assert set(schema["properties"]) == {"stream", "period", "counts", "tests", "as_of", "metadata"}
+    assert set(schema["properties"]) == {"stream", "period", "counts", "tests", "concentrations", "as_of", "metadata"}
     count = schema["properties"]["counts"]["patternProperties"]
     (series_pattern, spec), = count.items()
     assert {"type": "integer", "minimum": 0, "maximum": schemas.MAX_COUNT} in spec["anyOf"]
