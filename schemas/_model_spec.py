@@ -528,11 +528,11 @@ def load_model_spec(path: str | Path) -> ModelSpec:
     return load_toml_model(ModelSpec, path)
 
 
-EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band", "seir_two_band_lab")
+EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band", "seir_two_band_lab", "seir_hospital")
 
 
 def example_model_path(name: str) -> Path:
-    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``, ``seir_two_band_lab``)."""
+    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``, ``seir_two_band_lab``, ``seir_hospital``)."""
     if name not in EXAMPLE_MODELS:
         raise ValueError(f"no example model {name!r}; allowed: {list(EXAMPLE_MODELS)}")
     return Path(__file__).with_name("models") / f"{name}.toml"
