@@ -117,6 +117,9 @@ class Forecast:
     ancestors : int ndarray of shape (n_trajectories,)
         The particle each trajectory started from (index into the cloud given).
     infections_source : how ``latent["infections"]`` was counted.
+    measures : dict series -> "share" (a positivity series: the share of tests positive)
+        or "level" (a concentration series: a measured level, float draws); series
+        not named are counts.
     """
 
     start: int
@@ -126,6 +129,7 @@ class Forecast:
     weekly_series: frozenset[str] = frozenset()
     ancestors: np.ndarray | None = field(default=None, repr=False)
     infections_source: str = ""
+    measures: dict[str, str] = field(default_factory=dict, repr=False)
 
     # ------------------------------------------------------------------ shape
     @property
@@ -289,11 +293,12 @@ class Forecast:
             "latent": {},
         }
         for name in self.reported:
-            entry = _summary_block(self.reported[name], probs, "count")
+            kind = {"share": "probability", "level": "level"}.get(self.measures.get(name, ""), "count")
+            entry = _summary_block(self.reported[name], probs, kind)
             if name in self.weekly_series and self.horizon >= 7:
                 ends = [int(d) for d in self.weekly_ends()]
                 entry["weekly"] = {"ends": ends, **_summary_block(self.weekly(name), probs, "count")}
-            entry["peak"] = _peak_block(peaks[name])
+            entry["peak"] = _peak_block(peaks[name], kind)
             block["series"][name] = entry
         for key, draws in self.latent.items():
             entry = _summary_block(draws, probs, key if key in _DECIMALS else "count")
@@ -313,7 +318,15 @@ def _levels(levels: tuple[float, ...] | np.ndarray) -> np.ndarray:
 
 
 def _rounded(values: Any, kind: str) -> Any:
-    """Round to the kind's decimals (a float or nested lists); non-finite values become None."""
+    """Round to the kind's decimals (a float or nested lists); non-finite values become None.
+    A "level" (a concentration, any magnitude) keeps 6 significant digits."""
+    if kind == "level":
+        x = np.asarray(values, dtype=float)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            magnitude = np.floor(np.log10(np.abs(x)))
+            scale = np.where(np.isfinite(magnitude), 10.0 ** (5 - np.where(np.isfinite(magnitude), magnitude, 0.0)), 1.0)
+            out = np.where(np.isfinite(magnitude), np.round(x * scale) / scale, x)
+        return out.tolist() if np.all(np.isfinite(out)) else _nulls(out.tolist())
     out = np.round(np.asarray(values, dtype=float), _DECIMALS[kind])
     return out.tolist() if np.all(np.isfinite(out)) else _nulls(out.tolist())
 
@@ -331,12 +344,12 @@ def _summary_block(draws: np.ndarray, probs: np.ndarray, kind: str) -> dict[str,
     }
 
 
-def _peak_block(peak: dict[str, Any]) -> dict[str, Any]:
+def _peak_block(peak: dict[str, Any], kind: str = "count") -> dict[str, Any]:
     return {
         "day": {"mean": _rounded(peak["day"]["mean"], "day"), "quantiles": _rounded(peak["day"]["quantiles"], "day")},
         "size": {
-            "mean": _rounded(peak["size"]["mean"], "count"),
-            "quantiles": _rounded(peak["size"]["quantiles"], "count"),
+            "mean": _rounded(peak["size"]["mean"], kind),
+            "quantiles": _rounded(peak["size"]["quantiles"], kind),
         },
         "p_at_horizon": _rounded(peak["p_at_horizon"], "probability"),
     }
@@ -457,7 +470,10 @@ def forecast(
     track = _tracking(model, particles.take(index))
     stepper, futures = track.stepper, track.futures
     names = [s.name for s in model.series]
-    reported = {name: np.empty((n, horizon), dtype=np.int64) for name in names}
+    # Positivity series forecast their share positive, concentration series a level: floats.
+    measures = {s.name: {"positivity": "share", "concentration": "level"}[getattr(s, "kind", "")]
+                for s in model.series if getattr(s, "kind", "") in ("positivity", "concentration")}
+    reported = {name: np.empty((n, horizon), dtype=float if name in measures else np.int64) for name in names}
     expected = {name: np.empty((n, horizon)) for name in names}
     latent: dict[str, np.ndarray] = {}
     # A model without infection flows may count the latent quantities itself.
@@ -504,4 +520,5 @@ def forecast(
         weekly_series=frozenset(s.name for s in model.series if getattr(s, "weekly", False)),
         ancestors=_read_only(index),
         infections_source=(track.source if own is None else str(getattr(stepper, "latent_source", ""))) if "infections" in latent else "",
+        measures=measures,
     )

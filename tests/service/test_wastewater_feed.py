@@ -60,13 +60,13 @@ def good(d: int) -> bytes:
 
 
 class Run:
-    def __init__(self, root: Path, records: list[bytes]) -> None:
+    def __init__(self, root: Path, records: list[bytes], **stream: Any) -> None:
         config = DeploymentConfig.model_validate(
             {
                 "service": {"seed": 3, "checkpoint_dir": str(root / "checkpoints"), "keep_checkpoints": 100},
                 "metrics": {"enabled": False},
                 "streams": [{"id": STREAM, "model": str(SPEC), "start": START.isoformat(), "particles": 200,
-                             "forecast_trajectories": 20, "forecast_horizon_days": 7}],
+                             "forecast_trajectories": 20, "forecast_horizon_days": 7, **stream}],
             }
         )
         self.root = root
@@ -104,6 +104,20 @@ def test_samples_counts_and_non_detects_are_assimilated(tmp_path):
     # concentrations are forecast like any series (expected level with log-scale noise)
     forecast = est[-1].forecast
     assert forecast is not None and set(forecast["series"]) == {"cases", "ww_east", "ww_west"}
+
+
+def test_an_alert_rule_watches_the_wastewater_level(tmp_path):
+    # "P(the level at the east site passes 500 copies/l within 7 days)": the exceedance of
+    # a concentration series, raised like any alert (the closed form of this probability is
+    # checked in tests/filters/test_evidence_forecasts.py). Bug caught: concentration
+    # series missing from the forecast the alert rules read.
+    records = [msg(d, {"cases": 5 * d}, {"ww_east": {"value": 80.0 * d, "lod": 20.0}}) for d in range(1, 6)]
+    rule = {"name": "ww_high", "series": "ww_east", "threshold": 500.0, "horizon_days": 7}
+    run = Run(tmp_path, records, alerts=[rule])
+    probabilities = [e.exceedance["ww_high"].probability for e in run.estimates()]
+    assert all(0 <= p <= 1 for p in probabilities) and probabilities[-1] > 0.9
+    alerts = [orjson.loads(r.value) for r in run.transport.published["alerts"]]
+    assert alerts[0]["status"] == "raised" and alerts[0]["series"] == "ww_east" and alerts[0]["latest_mean"] > 0
 
 
 def test_a_late_sample_inside_the_window_is_assimilated(tmp_path):
