@@ -372,6 +372,8 @@ def bench_fleet(
         "streams_with_checkpoints": usage["streams"],
     }
     scaled = "" if streams == FLEET_STREAMS else f" (measured at {streams} streams, scaled linearly to {FLEET_STREAMS})"
+    if (stream_particles, trajectories) != (2_000, 500):
+        scaled += f"; NOT comparable: the target assumes 2,000 particles and 500 trajectories per stream, this ran {stream_particles} and {trajectories}"
     if scaled:
         figures["daily_round_seconds_at_3000"] = round_at_fleet
         figures["replica_peak_rss_bytes_at_3000"] = rss_at_fleet
