@@ -154,6 +154,8 @@ class RecordProcessor:
         Without it that check is skipped."""
         self.config, self.registry, self.store, self.metrics, self.today = config, registry, store, metrics, today
         self.earlier = earlier
+        # (topic, partition) -> (offset read up to, first valid observation of each stream seen)
+        self._first_seen: dict[tuple[str, int], tuple[int, dict[str, Record]]] = {}
 
     # ------------------------------------------------------------------ entry
     async def handle(
@@ -242,27 +244,44 @@ class RecordProcessor:
         raise _Reject("needs_recovery", f"stream {sid!r} is held: {runtime.held}", sid)
 
     async def _earlier_observation(self, sid: str, record: Record) -> Record | None:
-        """The first valid observation of stream ``sid`` before ``record`` on its partition, if any."""
+        """The first valid observation of stream ``sid`` before ``record`` on its partition, if any.
+
+        The partition is read once, incrementally: what was read for one stream's
+        first record (the first valid observation of every stream seen) answers the
+        next ones, so a new fleet of streams does not re-read the partition per stream.
+        """
         assert self.earlier is not None
-        key = sid.encode()
+        where = (record.topic, record.partition)
+        read_to, first = self._first_seen.get(where, (0, {}))
+        if record.offset > read_to:
+            try:
+                async for old in self.earlier(record.topic, record.partition, record.offset, read_to):
+                    stream = self._observation_stream(old)
+                    if stream is not None and stream not in first:
+                        first[stream] = old
+            except NotImplementedError as exc:
+                log.warning("stream %s has no checkpoint and its input cannot be read again (%s): taken as new", sid, exc)
+                return None
+            self._first_seen[where] = (record.offset, first)
+        found = first.get(sid)
+        return found if found is not None and found.offset < record.offset else None
+
+    @staticmethod
+    def _observation_stream(record: Record) -> str | None:
+        """The stream a record is a valid observation of, or None."""
         try:
-            async for old in self.earlier(record.topic, record.partition, record.offset):
-                if old.key is not None and old.key != key:
-                    continue
-                try:
-                    raw = orjson.loads(old.value)
-                except orjson.JSONDecodeError:
-                    continue
-                if not (isinstance(raw, dict) and raw.get("stream") == sid):
-                    continue
-                try:
-                    ObservationMessage.model_validate(raw)
-                except ValidationError:
-                    continue
-                return old
-        except NotImplementedError as exc:
-            log.warning("stream %s has no checkpoint and its input cannot be read again (%s): taken as new", sid, exc)
-        return None
+            raw = orjson.loads(record.value)
+        except orjson.JSONDecodeError:
+            return None
+        if not isinstance(raw, dict) or not isinstance(raw.get("stream"), str):
+            return None
+        if record.key is not None and record.key != raw["stream"].encode():
+            return None
+        try:
+            ObservationMessage.model_validate(raw)
+        except ValidationError:
+            return None
+        return raw["stream"]
 
     async def write_checkpoint(self, checkpoint: Checkpoint) -> CheckpointInfo:
         """Write in a worker thread; count failures and re-raise them (the offset must then not be committed)."""

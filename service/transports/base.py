@@ -86,9 +86,9 @@ class Transport:
         """Records waiting per (topic, partition), where the transport knows it."""
         return {}
 
-    def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
-        """The input records of a partition with offsets below ``before``, oldest
-        first, as far back as the source still holds them. Raises
+    def earlier(self, topic: str, partition: int, before: int, start: int = 0) -> AsyncIterator[Record]:
+        """The input records of a partition with offsets from ``start`` up to (not
+        including) ``before``, oldest first, as far back as the source still holds them. Raises
         NotImplementedError where the source cannot be read again (stdin)."""
         raise NotImplementedError(f"{type(self).__name__} cannot read its input again")
 

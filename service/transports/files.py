@@ -112,7 +112,7 @@ class FileTransport(Transport):
         except OSError as exc:
             raise TransportError(f"cannot read input {self.input_path}: {exc.strerror}", topic=self.topic) from None
 
-    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+    async def earlier(self, topic: str, partition: int, before: int, start: int = 0) -> AsyncIterator[Record]:
         if self.input_path is None:
             raise NotImplementedError("standard input cannot be read again")
         if (topic, partition) != (self.topic, 0):
@@ -122,6 +122,8 @@ class FileTransport(Transport):
                 for offset, line in enumerate(f):
                     if offset >= before:
                         break
+                    if offset < start:
+                        continue
                     yield Record(value=line.rstrip(b"\r\n"), topic=self.topic, partition=0, offset=offset)
         except OSError as exc:
             raise TransportError(f"cannot read input {self.input_path} again: {exc.strerror}", topic=self.topic) from None

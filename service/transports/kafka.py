@@ -467,9 +467,9 @@ class KafkaTransport(Transport):
             await stop_quietly(reader, what="end-offset reader")
             await admin.close()
 
-    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
-        """Read the partition from its earliest retained offset up to ``before`` with a
-        consumer of its own (no group, nothing committed)."""
+    async def earlier(self, topic: str, partition: int, before: int, start: int = 0) -> AsyncIterator[Record]:
+        """Read the partition from ``start`` (or its earliest retained offset, if later) up to
+        ``before`` with a consumer of its own (no group, nothing committed)."""
         s = self.settings
         tp = TopicPartition(topic, partition)
         reader = AIOKafkaConsumer(
@@ -483,7 +483,8 @@ class KafkaTransport(Transport):
         try:
             await reader.start()
             reader.assign([tp])
-            await reader.seek_to_beginning(tp)
+            first = (await reader.beginning_offsets([tp]))[tp]
+            reader.seek(tp, max(first, start))
             end = min(before, (await reader.end_offsets([tp]))[tp])
             while await reader.position(tp) < end:
                 batch = await reader.getmany(tp, timeout_ms=1000, max_records=500)

@@ -70,9 +70,9 @@ class MemoryTransport(Transport):
     def lag(self) -> dict[tuple[str, int], int]:
         return {(self.topic, 0): len(self.inputs) - self.position}
 
-    async def earlier(self, topic: str, partition: int, before: int) -> AsyncIterator[Record]:
+    async def earlier(self, topic: str, partition: int, before: int, start: int = 0) -> AsyncIterator[Record]:
         for record in list(self.inputs):
-            if (record.topic, record.partition) == (topic, partition) and record.offset < before:
+            if (record.topic, record.partition) == (topic, partition) and start <= record.offset < before:
                 yield record
 
     async def input_ends(self) -> dict[tuple[str, int], int]:
