@@ -236,13 +236,12 @@ class Service:
         watch: asyncio.Future | None = None
         try:
             # Fail fast on unusable saved state (e.g. a checkpoint of another model).
-            await asyncio.to_thread(self.registry.preload)
+            saved = await asyncio.to_thread(self.registry.preload)
             self._count_fallbacks()
             # Seed the update age from the checkpoints, so a stream whose feed
             # stopped before a restart still shows as stale.
-            for stream, runtime in self.registry.runtimes.items():
-                if runtime.saved_at is not None:
-                    self.metrics.last_update.setdefault(stream, runtime.saved_at)
+            for stream, saved_at in saved.items():
+                self.metrics.last_update.setdefault(stream, saved_at)
             await self.transport.start(on_assign=self._on_assign, on_revoke=self._settle)
             self.metrics.broker_reachable.set(1)
             watch = asyncio.ensure_future(self._watch_broker())

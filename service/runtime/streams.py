@@ -214,10 +214,16 @@ class StreamRegistry:
                     "(a reset or rebuild applies the new one)", stream_id, name, want, have,
                 )
 
-    def preload(self) -> None:
-        """Load (or create) every configured stream now; raises on unusable checkpoints."""
+    def preload(self) -> dict[str, float]:
+        """Check every configured stream's saved state now (raises on an unusable checkpoint)
+        and say when each checkpoint was written. The clouds are not kept: a replica holds only
+        the streams of its partitions (:meth:`resume_offsets`), others load when first needed."""
+        saved: dict[str, float] = {}
         for stream_id in self.streams:
-            self.get(stream_id)
+            runtime = self.runtimes.get(stream_id) or self._load_or_create(stream_id)
+            if runtime.saved_at is not None:
+                saved[stream_id] = runtime.saved_at
+        return saved
 
     def resume_offsets(self, assigned: list[tuple[str, int]]) -> dict[tuple[str, int], int]:
         """Where to resume each assigned partition: after the oldest position any
@@ -227,10 +233,13 @@ class StreamRegistry:
         wanted = {f"{t}|{p}": (t, p) for t, p in assigned}
         resume: dict[tuple[str, int], int] = {}
         for stream_id in self.streams:
-            runtime = self.get(stream_id)
-            assert runtime is not None
+            runtime = self._load_or_create(stream_id)
+            mine = False
             for key, offset in runtime.positions.items():
                 if key in wanted:
                     pair = wanted[key]
                     resume[pair] = min(resume.get(pair, offset + 1), offset + 1)
+                    mine = True
+            if mine:  # keep only this replica's clouds in memory; the rest load if ever needed
+                self.runtimes[stream_id] = runtime
         return resume
