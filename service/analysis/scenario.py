@@ -162,7 +162,18 @@ def run_scenario_command(args: argparse.Namespace) -> int:
     if stream is None:
         return _fail(f"stream {args.stream!r} is not in {args.config}; allowed: {sorted(streams)}", 2)
     try:
-        model = CompartmentalModel(load_stream_model(stream), window_days=stream.assimilation_window_days)
+        spec = load_stream_model(stream)
+    except (SpecError, ValueError) as exc:
+        return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
+    if getattr(spec, "kind", None) == "individual":
+        return _fail(
+            f"stream {stream.id!r} runs an individual-based model ({stream.model!r}); casecloud scenario runs "
+            "compartmental streams; individual-based scenarios on settings run with filters.run_setting_scenarios "
+            "(see schemas/POPULATION.md)",
+            2,
+        )
+    try:
+        model = CompartmentalModel(spec, window_days=stream.assimilation_window_days)
     except (SpecError, ValueError) as exc:
         return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
     try:
