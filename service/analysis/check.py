@@ -154,12 +154,12 @@ def check_spec(model, particles: int = 1000, days: int = 60, seed: int = 1) -> C
         fading = (result.r_eff < 1) & (result.attack < NO_OUTBREAK)
         if np.mean(fading) > 0.5:
             result.flags.append(
-                f"the priors put most mass on no outbreak: {np.mean(fading):.0%} of the prior draws have R_eff below 1 "
+                f"the priors put most mass on no outbreak: {np.mean(fading):.1%} of the prior draws have R_eff below 1 "
                 f"on day 0 and infect fewer than {NO_OUTBREAK:.0%} of the population in {days} days"
             )
     if result.attack_week is not None and np.mean(result.attack_week > EVERYONE) > 0.5:
         result.flags.append(
-            f"the priors put most mass on everyone infected within a week: {np.mean(result.attack_week > EVERYONE):.0%} "
+            f"the priors put most mass on everyone infected within a week: {np.mean(result.attack_week > EVERYONE):.1%} "
             f"of the prior epidemics infect over {EVERYONE:.0%} of the population by day 7"
         )
     return result
@@ -269,6 +269,12 @@ def run_check_command(args: argparse.Namespace) -> int:
             return fail(f"--start {args.start!r}: {exc}")
         except SpecError as exc:
             return fail(str(exc))
+        early = [p for p, d in zip(history.periods, history.dates) if d <= start]
+        if early:
+            return fail(
+                f"--start {args.start}: the history has {len(early)} period(s) ending on or before it (first {early[0]!r}); "
+                "allowed: a start before every period (model day 0 is the initial state)"
+            )
         days = max(days, max((d - start).days for d in history.dates))
     result = check_spec(model, args.particles, days, args.seed)
     if history is not None and start is not None:

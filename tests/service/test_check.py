@@ -73,8 +73,10 @@ def test_priors_that_mean_no_outbreak_are_flagged(tmp_path, capsys):
 
 
 def test_the_shipped_examples_pass_except_the_waning_one_by_design(capsys):
-    for name in ("sir", "seir", "seir_two_band", "seir_two_band_lab"):
+    for name in ("sir", "seir_two_band", "seir_two_band_lab"):
         assert main(["check", "--model", name, "--particles", "200", "--days", "30"]) == 0, capsys.readouterr().out
+    # (seir's prior puts about half its draws below the threshold, so whether it is flagged depends on
+    # the draws; it is left out of this list on purpose)
     # seirs starts with 40 % immune on average (R fraction ~ Beta(6, 9)): most draws begin below the
     # epidemic threshold and grow only once immunity wanes, which the check reports, as it should
     assert main(["check", "--model", "seirs", "--particles", "200", "--days", "30"]) == 1
@@ -99,3 +101,12 @@ def test_observations_outside_the_prior_band_are_listed(tmp_path, capsys):
     assert [(c["period"], c["observed"]) for c in summary["prior_data_conflicts"]] == [("2026-01-13", 500000)]
     assert (tmp_path / "out" / "prior_predictive.png").stat().st_size > 10_000
     assert orjson.loads((tmp_path / "out" / "check.json").read_bytes())["flags"] == summary["flags"]
+
+
+def test_a_start_after_the_first_period_is_refused(tmp_path, capsys):
+    # Bug caught: rows before model day 0 silently dropped from the prior-data comparison.
+    history = tmp_path / "h.csv"
+    history.write_text("period,cases\n2026-01-02,3\n2026-01-05,4\n")
+    assert main(["check", "--model", "sir", "--history", str(history), "--start", "2026-01-03"]) == 2
+    assert "1 period(s) ending on or before it (first '2026-01-02')" in capsys.readouterr().err
+
