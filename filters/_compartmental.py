@@ -19,7 +19,7 @@ from schemas import ModelSpec
 from ._expressions import CompiledExpression, ExpressionError, compile_expression
 from ._model import ModelError, ModelGuardError, first_bad
 from ._particles import ParticleSet
-from ._priors import from_unconstrained, sample_prior, to_unconstrained
+from ._priors import ParameterScales, from_unconstrained, sample_prior, to_unconstrained
 from ._reports import ReportingCdfTable
 from ._series import ObservedSeries, compile_series, mask_groups
 
@@ -118,7 +118,7 @@ def _spectral_radius(K: list[list[np.ndarray]], n: int) -> np.ndarray:
     return out
 
 
-class CompartmentalModel(ObservedSeries):
+class CompartmentalModel(ObservedSeries, ParameterScales):
     """A vectorised stochastic compartmental model (implements ``Model``).
 
     Parameters
@@ -819,15 +819,3 @@ class CompartmentalModel(ObservedSeries):
         out["R_eff"] = self.reproduction_number(particles, t)
         return out
 
-    # ------------------------------------------------------------- transforms
-    def to_unconstrained(self, params: np.ndarray) -> np.ndarray:
-        out = np.array(params, dtype=float)
-        for j, (transform, bounds) in enumerate(self._transforms):
-            out[..., j] = to_unconstrained(out[..., j], transform, bounds)
-        return out
-
-    def from_unconstrained(self, values: np.ndarray) -> np.ndarray:
-        out = np.array(values, dtype=float)
-        for j, (transform, bounds) in enumerate(self._transforms):
-            out[..., j] = from_unconstrained(out[..., j], transform, bounds)
-        return out

@@ -94,7 +94,7 @@ from schemas import DiscretePeriod, GammaPeriod, GeometricPeriod, IndividualMode
 from ._compartmental import ModelError, _shift_days
 from ._particles import ParticleSet
 from ._population import Population, build_population
-from ._priors import from_unconstrained, sample_prior, to_unconstrained
+from ._priors import ParameterScales, from_unconstrained, sample_prior, to_unconstrained
 from ._reports import ReportingCdfTable
 from ._series import ObservedSeries, compile_series, mask_groups
 
@@ -159,7 +159,7 @@ class _Table:
         return float(self.probs @ np.exp(-theta * self.days))
 
 
-class IndividualModel(ObservedSeries):
+class IndividualModel(ObservedSeries, ParameterScales):
     """The individual-based family (implements ``filters.Model``).
 
     Parameters
@@ -623,15 +623,3 @@ class IndividualModel(ObservedSeries):
         out["R_eff"] = self.reproduction_number(particles, t)
         return out
 
-    # ------------------------------------------------------------ transforms
-    def to_unconstrained(self, params: np.ndarray) -> np.ndarray:
-        out = np.array(params, dtype=float)
-        for j, (transform, bounds) in enumerate(self._transforms):
-            out[..., j] = to_unconstrained(out[..., j], transform, bounds)
-        return out
-
-    def from_unconstrained(self, values: np.ndarray) -> np.ndarray:
-        out = np.array(values, dtype=float)
-        for j, (transform, bounds) in enumerate(self._transforms):
-            out[..., j] = from_unconstrained(out[..., j], transform, bounds)
-        return out

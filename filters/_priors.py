@@ -8,7 +8,7 @@ from scipy import stats
 
 from schemas import Beta, Gamma, LogNormal, Normal, Uniform
 
-__all__ = ["sample_prior", "prior_logpdf", "to_unconstrained", "from_unconstrained"]
+__all__ = ["ParameterScales", "sample_prior", "prior_logpdf", "to_unconstrained", "from_unconstrained"]
 
 
 def sample_prior(dist: object, rng: np.random.Generator, size: int) -> np.ndarray:
@@ -58,3 +58,23 @@ def from_unconstrained(y: np.ndarray, transform: str, bounds: tuple[float, float
         lo, hi = bounds
         return lo + (hi - lo) / (1.0 + np.exp(-y))
     return np.asarray(y, dtype=float)
+
+
+class ParameterScales:
+    """``to_unconstrained`` / ``from_unconstrained`` over every parameter column, for a model
+    whose ``_transforms`` lists each column's (transform, bounds): the scales Liu-West jitter,
+    drift and PMMH proposals work on."""
+
+    _transforms: list[tuple[str, tuple[float, float]]]
+
+    def to_unconstrained(self, params: np.ndarray) -> np.ndarray:
+        out = np.array(params, dtype=float)
+        for j, (transform, bounds) in enumerate(self._transforms):
+            out[..., j] = to_unconstrained(out[..., j], transform, bounds)
+        return out
+
+    def from_unconstrained(self, values: np.ndarray) -> np.ndarray:
+        out = np.array(values, dtype=float)
+        for j, (transform, bounds) in enumerate(self._transforms):
+            out[..., j] = from_unconstrained(out[..., j], transform, bounds)
+        return out
