@@ -9,7 +9,6 @@ non-negative, and each group's population is conserved exactly.
 
 from __future__ import annotations
 
-import hashlib
 from typing import Any
 
 import numpy as np
@@ -288,17 +287,8 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
         return sorted(c for c in reach(entries) if reach({c}) & infectious)
 
     # --------------------------------------------------------------- protocol
-    def fingerprint(self) -> str:
-        fp = self.spec.fingerprint()
-        if self.window_days == self.default_window_days:
-            return fp
-        # A window other than the spec's changes the particles' history length.
-        return hashlib.sha256(f"{fp}|window_days={self.window_days}".encode()).hexdigest()[:16]
-
     def initial(self, n: int, rng: np.random.Generator) -> ParticleSet:
-        params = np.empty((n, len(self.param_names)))
-        for j, p in enumerate(self.spec.parameters.values()):
-            params[:, j] = p.value if p.kind == "fixed" else sample_prior(p.prior, rng, n)
+        params = self.draw_parameters(n, rng)
         counts = np.zeros((n, self.n_groups, self.n_compartments), dtype=np.int64)
         left = np.broadcast_to(self.population, (n, self.n_groups)).copy()
         for entry in self.spec.initial.set:

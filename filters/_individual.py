@@ -82,7 +82,6 @@ was infectious in the window.
 
 from __future__ import annotations
 
-import hashlib
 import math
 from typing import Any
 
@@ -319,16 +318,8 @@ class IndividualModel(ObservedSeries, ParameterScales):
         self._place_members = np.concatenate(members).astype(np.int32)
 
     # -------------------------------------------------------------- protocol
-    def fingerprint(self) -> str:
-        fp = self.spec.fingerprint()
-        if self.window_days == self.default_window_days:
-            return fp
-        return hashlib.sha256(f"{fp}|window_days={self.window_days}".encode()).hexdigest()[:16]
-
     def initial(self, n: int, rng: np.random.Generator) -> ParticleSet:
-        params = np.empty((n, len(self.param_names)))
-        for j, p in enumerate(self.spec.parameters.values()):
-            params[:, j] = p.value if p.kind == "fixed" else sample_prior(p.prior, rng, n)
+        params = self.draw_parameters(n, rng)
         init = self.spec.initial
 
         def draw(quantity: Any) -> np.ndarray:

@@ -3,6 +3,8 @@ the transforms between a parameter's natural and unconstrained scales."""
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from scipy import stats
 
@@ -66,6 +68,14 @@ class ParameterScales:
     drift and PMMH proposals work on."""
 
     _transforms: list[tuple[str, tuple[float, float]]]
+    spec: Any
+
+    def draw_parameters(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """(n, parameters): fixed values, or draws from each parameter's prior, in spec order."""
+        params = np.empty((n, len(self.spec.parameters)))
+        for j, p in enumerate(self.spec.parameters.values()):
+            params[:, j] = p.value if p.kind == "fixed" else sample_prior(p.prior, rng, n)
+        return params
 
     def to_unconstrained(self, params: np.ndarray) -> np.ndarray:
         out = np.array(params, dtype=float)

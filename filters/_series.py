@@ -15,6 +15,7 @@ incidence series only.
 
 from __future__ import annotations
 
+import hashlib
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -189,10 +190,19 @@ class ObservedSeries:
 
     series: list[_CompiledSeries]
     window_days: int
+    default_window_days: int
     spec: Any
     _series_by_name: dict[str, _CompiledSeries]
     _mask_groups: dict[str, np.ndarray | None]
     _cdf_tables: dict[str, ReportingCdfTable]
+
+    def fingerprint(self) -> str:
+        """The spec's fingerprint; a window other than the spec's changes it (the
+        particles' history then has another length)."""
+        fp = self.spec.fingerprint()
+        if self.window_days == self.default_window_days:
+            return fp
+        return hashlib.sha256(f"{fp}|window_days={self.window_days}".encode()).hexdigest()[:16]
 
     def check_observation(self, observation: Observation) -> None:
         for name, value in observation.values.items():
