@@ -258,13 +258,6 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
         self._infection_flows = [i for i, f in enumerate(self.spec.flows) if f.infection]
         self._mask_groups = mask_groups(self.series)
 
-    def _resolve(self, ref: float | str | None, where: str) -> int | None:
-        if isinstance(ref, str):
-            if ref in self._pidx:
-                return self._pidx[ref]
-            raise ModelError(f"{where}: {ref!r} must be a parameter; allowed: {self.param_names}")
-        return None
-
     def _infected_compartments(self) -> list[int]:
         """Compartments on a path from an infection flow to an infectious compartment."""
         infection = [i for i, f in enumerate(self.spec.flows) if f.infection]

@@ -237,13 +237,6 @@ class IndividualModel(ObservedSeries, ParameterScales):
         self._mask_groups = mask_groups(self.series)
 
     # --------------------------------------------------------------- compile
-    def _resolve(self, ref: float | str | None, where: str) -> int | None:
-        if isinstance(ref, str):
-            if ref in self._pidx:
-                return self._pidx[ref]
-            raise ModelError(f"model {self.spec.name!r}, {where}: {ref!r} must be a parameter; allowed: {self.param_names}")
-        return None
-
     def _value(self, ref: float | str, where: str) -> tuple[float, int | None]:
         col = self._resolve(ref, where)
         return (0.0, col) if col is not None else (float(ref), None)

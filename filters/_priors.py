@@ -68,7 +68,19 @@ class ParameterScales:
     drift and PMMH proposals work on."""
 
     _transforms: list[tuple[str, tuple[float, float]]]
+    _pidx: dict[str, int]
+    param_names: list[str]
     spec: Any
+
+    def _resolve(self, ref: float | str | None, where: str) -> int | None:
+        """The parameter column a name in the spec refers to (None for a number)."""
+        if isinstance(ref, str):
+            if ref in self._pidx:
+                return self._pidx[ref]
+            from ._model import ModelError
+
+            raise ModelError(f"model {self.spec.name!r}, {where}: {ref!r} must be a parameter; allowed: {self.param_names}")
+        return None
 
     def draw_parameters(self, n: int, rng: np.random.Generator) -> np.ndarray:
         """(n, parameters): fixed values, or draws from each parameter's prior, in spec order."""

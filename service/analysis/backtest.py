@@ -421,6 +421,20 @@ def _r(x: Any) -> float | None:
     return round(x, 6) if math.isfinite(x) else None
 
 
+def _quantile_scores(q: Any, sc: dict[str, Any], k: int) -> dict[str, Any]:
+    """The median, the 5/25/75/95 % quantiles and the scores of target ``k``, as a row's columns."""
+    return {
+        "median": _r(q[_IDX[0.5]]),
+        "q05": _r(q[_IDX[0.05]]),
+        "q25": _r(q[_IDX[0.25]]),
+        "q75": _r(q[_IDX[0.75]]),
+        "q95": _r(q[_IDX[0.95]]),
+        "wis": _r(sc["wis"][k]),
+        "crps": _r(sc["crps"][k]),
+        "log_score": _r(sc["log"][k]),
+    }
+
+
 def _score_block(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
     """Scores of (M, k) draws against k observations."""
     q = np.quantile(draws, _LEVELS, axis=0)  # (23, k)
@@ -662,14 +676,7 @@ def _score_forecasts(history, origins, series_names, horizons, m, seed, stream_i
                         "horizon": h,
                         "target_period": target,
                         "observed": int(ys[k]),
-                        "median": _r(q[_IDX[0.5]]),
-                        "q05": _r(q[_IDX[0.05]]),
-                        "q25": _r(q[_IDX[0.25]]),
-                        "q75": _r(q[_IDX[0.75]]),
-                        "q95": _r(q[_IDX[0.95]]),
-                        "wis": _r(sc["wis"][k]),
-                        "crps": _r(sc["crps"][k]),
-                        "log_score": _r(sc["log"][k]),
+                        **_quantile_scores(q, sc, k),
                     }
                     if complete is not None:
                         row["as_of"] = o.as_of.isoformat()
@@ -754,14 +761,7 @@ def _score_nowcasts(history, model, start: dt.date, origins, series_names, m, se
                             "target_period": history.periods[p],
                             "reported": int(reported[k]),
                             "eventual": int(y[k]),
-                            "median": _r(q[_IDX[0.5]]),
-                            "q05": _r(q[_IDX[0.05]]),
-                            "q25": _r(q[_IDX[0.25]]),
-                            "q75": _r(q[_IDX[0.75]]),
-                            "q95": _r(q[_IDX[0.95]]),
-                            "wis": _r(sc["wis"][k]),
-                            "crps": _r(sc["crps"][k]),
-                            "log_score": _r(sc["log"][k]),
+                            **_quantile_scores(q, sc, k),
                         }
                     )
                     bucket = acc.setdefault((method, spec.name, back[k]), {k2: [] for k2 in ("wis", "crps", "cov50", "cov90", "log", "bias")})
