@@ -134,9 +134,16 @@ def _unconstrained(params: Sequence[CalibrationParameter], x: np.ndarray) -> np.
 
 
 def history_observations(history: Any, start: Any) -> list[Observation]:
-    """Observations (model day = (date - start).days) from a ``schemas.History``."""
-    return [Observation(day, {k: (None if v is None else float(v)) for k, v in counts.items()})
-            for day, counts in history.by_day(start)]
+    """Observations (model day = (date - start).days) from a ``schemas.History``: counts, the
+    positives of positivity series with their tests (``trials``), and concentrations (``nd`` as
+    0.0) with their limits of detection and flows."""
+
+    def given(d: dict) -> dict:
+        return {k: float(v) for k, v in d.items() if v is not None}
+
+    return [Observation(day, {k: (None if v is None else float(v)) for k, v in counts.items()},
+                        given(tests), given(limits), given(flows))
+            for day, counts, tests, limits, flows in history.by_day_detailed(start)]
 
 
 # --------------------------------------------------------------------------- likelihood

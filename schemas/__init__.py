@@ -13,7 +13,7 @@ from ._config import (
     load_deployment_config,
 )
 from ._errors import SpecError
-from ._history import History, load_history
+from ._history import History, Vintage, load_history, message_fields
 from ._messages import (
     MAX_COUNT,
     MESSAGE_MODELS,
@@ -21,6 +21,7 @@ from ._messages import (
     DeadLetter,
     EstimateMessage,
     Exceedance,
+    Concentration,
     ObservationMessage,
     SourcePosition,
     NowcastPeriod,
@@ -67,8 +68,10 @@ from ._model_spec import (
     Noise,
     Normal,
     Parameter,
+    Positivity,
     Quantity,
     Series,
+    Shedding,
     Transmission,
     Uniform,
     load_model_spec,
@@ -118,6 +121,7 @@ __all__ = [
     "DeadLetter",
     "EstimateMessage",
     "Exceedance",
+    "Concentration",
     "ObservationMessage",
     "SourcePosition",
     "NowcastPeriod",
@@ -139,11 +143,15 @@ __all__ = [
     "Noise",
     "Normal",
     "Parameter",
+    "Positivity",
     "Quantity",
     "Series",
+    "Shedding",
     "SpecError",
     "History",
+    "Vintage",
     "load_history",
+    "message_fields",
     "Transmission",
     "Uniform",
     "load_model_spec",

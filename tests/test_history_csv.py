@@ -44,7 +44,6 @@ def test_iso_weeks_end_on_sunday(tmp_path):
     "text, where, allowed",
     [
         ("period,cases\n2025-10-01,3\n2025-10-02,-4\n", ":3: column 2 (cases)", "whole number"),
-        ("period,cases\n2025-10-01,2.5\n", ":2: column 2 (cases)", "whole number"),
         ("period,cases\n2025-10-01,abc\n", ":2: column 2 (cases)", "or empty for not reported"),
         ("period,cases\n2025-10-02,3\n2025-10-02,4\n", ":3: column 1 (period)", "strictly increasing"),
         ("period,cases\n2025-10-02,3\n2025-10-01,4\n", ":3: column 1 (period)", "strictly increasing"),

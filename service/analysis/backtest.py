@@ -324,10 +324,13 @@ def _forecast_draws(config, runtime, stream_id: str, series_names, hmax: int, co
 def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
     today = max(history.dates) + dt.timedelta(days=1)
     config, scfg, transport, service, model, series_names = _service(config, history, stream_id, checkpoint_dir, today)
+    from schemas import message_fields
+
+    kinds = _kinds(model)
     messages = []
-    for period, counts in zip(history.periods, history.values):
-        body = {name: counts.get(name) for name in series_names}
-        messages.append(orjson.dumps({"stream": stream_id, "period": period, "counts": body}))
+    for i, (period, counts) in enumerate(zip(history.periods, history.values)):
+        fields = message_fields(counts, *history.details(i), kinds, series_names)
+        messages.append(orjson.dumps({"stream": stream_id, "period": period, **fields}))
     for value in messages:
         transport.feed(value)
     origins: list[_Origin] = []
@@ -354,15 +357,23 @@ def _replay(config, history, stream_id: str, horizons: list[int], trajectories: 
     return model, scfg, series_names, origins, estimates, alerts, dead, counts
 
 
-def vintage_messages(history, stream_id: str, series_names: list[str]) -> list[bytes]:
+def _kinds(model) -> dict[str, str]:
+    return {s.name: getattr(s, "kind", "incidence") for s in model.series}
+
+
+def vintage_messages(history, stream_id: str, series_names: list[str], kinds: dict[str, str] | None = None) -> list[bytes]:
     """The messages a history with vintages is replayed as: one per row, in file order, with the
-    row's ``as_of`` (none for a final row) and its counts of ``series_names`` (empty cells null)."""
+    row's ``as_of`` (none for a final row) and its values of ``series_names`` (empty cells null):
+    counts, positivity series' tests and concentration series' samples (``kinds``: series -> kind;
+    None: every series a count)."""
+    from schemas import message_fields
+
     out = []
     for v in history.vintages:
         body: dict[str, Any] = {"stream": stream_id, "period": v.period}
         if v.as_of is not None:
             body["as_of"] = v.as_of.isoformat()
-        body["counts"] = {name: v.counts.get(name) for name in series_names}
+        body.update(message_fields(v.counts, v.tests, v.limits, v.flows, kinds or {}, series_names))
         out.append(orjson.dumps(body))
     return out
 
@@ -372,7 +383,7 @@ def _replay_vintages(config, history, stream_id: str, horizons: list[int], traje
     service applied any row of that date): forecast draws, nowcast draws and the latest estimate."""
     today = max([*history.dates, *(v.known for v in history.vintages)]) + dt.timedelta(days=1)
     config, scfg, transport, service, model, series_names = _service(config, history, stream_id, checkpoint_dir, today)
-    messages = vintage_messages(history, stream_id, series_names)
+    messages = vintage_messages(history, stream_id, series_names, _kinds(model))
     for value in messages:
         transport.feed(value)
     known = [v.known for v in history.vintages]
@@ -561,11 +572,14 @@ def run_backtest(
         raise BacktestError(f"stream {stream_id!r} is not configured; configured: {sorted(s.id for s in config.streams)}")
     from ..runtime.streams import load_stream_model
 
-    observed = [s.name for s in load_stream_model(scfg).series]
+    stream_model = load_stream_model(scfg)
+    observed = [s.name for s in stream_model.series]
     if not set(observed) & set(history.series):
         raise BacktestError(
             f"the history's series {history.series} include none that the model of stream {stream_id!r} observes ({observed})"
         )
+    history.check_kinds({s.name: getattr(s, "kind", "incidence") for s in stream_model.series},
+                        f"model {stream_model.name!r} of stream {stream_id!r}")
     m = int(trajectories or scfg.forecast_trajectories)
     if m < 10:
         raise BacktestError(f"trajectories must be at least 10, got {m}")

@@ -200,6 +200,7 @@ def run_calibrate_command(args: argparse.Namespace) -> int:
         except ValueError:
             raise SpecError(f"--start {args.start!r} is not a date; allowed: YYYY-MM-DD") from None
         history = load_history(args.history, allowed_series=[s.name for s in spec.series])
+        history.check_kinds({s.name: getattr(s, "kind", "incidence") for s in spec.series}, f"model {spec.name!r}")
         observations = history_observations(history, start)
         params = calibration_parameters(model)
         burn_in = args.burn_in if args.burn_in is not None else args.iterations // 4

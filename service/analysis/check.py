@@ -265,10 +265,11 @@ def run_check_command(args: argparse.Namespace) -> int:
         try:
             start = dt.date.fromisoformat(args.start)
             history = load_history(args.history, [s.name for s in model.series])
+            history.check_kinds({s.name: s.kind for s in model.spec.series}, f"model {model.spec.name!r}")
+        except SpecError as exc:  # before ValueError, its base: a history problem is not the --start's
+            return fail(str(exc))
         except ValueError as exc:
             return fail(f"--start {args.start!r}: {exc}")
-        except SpecError as exc:
-            return fail(str(exc))
         early = [p for p, d in zip(history.periods, history.dates) if d <= start]
         if early:
             return fail(

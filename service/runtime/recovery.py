@@ -112,10 +112,20 @@ async def stream_records(transport: Transport, stream_id: str, progress: Progres
 def _history_records(config: DeploymentConfig, stream_id: str, path: Path) -> list[Record]:
     from schemas import load_history
 
+    from schemas import message_fields
+
+    from .streams import load_stream_model
+
     history = load_history(path)
+    scfg = next(s for s in config.streams if s.id == stream_id)
+    series = load_stream_model(scfg).series
+    kinds = {s.name: getattr(s, "kind", "incidence") for s in series}
+    history.check_kinds(kinds, f"stream {stream_id!r}")
     topic = f"history:{path}"
     return [
-        Record(value=orjson.dumps({"stream": stream_id, "period": period, "counts": counts}), key=stream_id.encode(), topic=topic, offset=i)
+        Record(value=orjson.dumps({"stream": stream_id, "period": period,
+                                   **message_fields(counts, *history.details(i), kinds, history.series)}),
+               key=stream_id.encode(), topic=topic, offset=i)  # fmt: skip
         for i, (period, counts) in enumerate(zip(history.periods, history.values))
     ]
 
