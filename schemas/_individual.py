@@ -60,6 +60,7 @@ __all__ = [
     "spec_kind",
     "EXAMPLE_INDIVIDUAL_MODELS",
     "example_individual_path",
+    "load_named_spec",
 ]
 
 # Events a series of an individual-based model can count (per age band, per day).
@@ -462,3 +463,27 @@ def example_individual_path(name: str) -> Path:
     if name not in EXAMPLE_INDIVIDUAL_MODELS:
         raise ValueError(f"no individual-based example {name!r}; allowed: {list(EXAMPLE_INDIVIDUAL_MODELS)}")
     return Path(__file__).with_name("models") / "individual" / f"{name}.toml"
+
+
+def load_named_spec(ref: str | Path) -> ModelSpec | IndividualModelSpec:
+    """The spec ``ref`` names, of either family: the path of a spec TOML (an existing
+    file, or any name ending in ``.toml``), or the name of a shipped example.
+
+    Raises SpecError naming what was given and what is allowed."""
+    from ._model_spec import EXAMPLE_MODELS, example_model_path
+
+    text = str(ref)
+    if text.endswith(".toml") or Path(text).is_file():
+        path = Path(text)
+        if not path.is_file():
+            message = f"model {text!r}: no such spec file; allowed: a spec TOML path, or a shipped example " \
+                f"{[*EXAMPLE_MODELS, *EXAMPLE_INDIVIDUAL_MODELS]}"
+            raise SpecError(message, [message])
+        return load_spec(path)
+    if text in EXAMPLE_INDIVIDUAL_MODELS:
+        return load_spec(example_individual_path(text))
+    if text in EXAMPLE_MODELS:
+        return load_model_spec(example_model_path(text))
+    message = (f"model {text!r} is neither a spec file nor a shipped example; allowed: a spec TOML path, "
+               f"or one of {[*EXAMPLE_MODELS, *EXAMPLE_INDIVIDUAL_MODELS]}")
+    raise SpecError(message, [message])

@@ -28,19 +28,13 @@ from filters import (
     CalibrationResult,
     CalibrationSettings,
     CalibrationStateError,
-    CompartmentalModel,
     ModelError,
     calibrate,
+    build_model,
     calibration_parameters,
     history_observations,
 )
-from schemas import (
-    EXAMPLE_MODELS,
-    SpecError,
-    example_model_path,
-    load_history,
-    load_model_spec,
-)
+from schemas import SpecError, load_history, load_named_spec
 
 from ..console import Progress
 
@@ -118,7 +112,7 @@ def add_calibrate_parser(sub: Any) -> None:
         description="Particle marginal Metropolis-Hastings over the static parameters of a model spec, on a "
         "history CSV (header period,<series>...). Resumable: run again with the same --out to continue.",
     )
-    p.add_argument("--model", required=True, help="model spec TOML, or a shipped example name (sir, seir, ...)")
+    p.add_argument("--model", required=True, help="model spec TOML of either family, or a shipped example name (sir, seir, ..., pellingwold_flu)")
     p.add_argument("--history", required=True,
                    help="CSV: period,<series1>,... (dates or ISO weeks; empty = missing); with data vintages "
                         "(period,as_of,<series1>,...) the last vintage of each period is read as its final count")  # fmt: skip
@@ -192,9 +186,8 @@ def render_summary(result: CalibrationResult) -> str:
 def run_calibrate_command(args: argparse.Namespace) -> int:
     model_ref = args.model
     try:
-        spec_path = example_model_path(model_ref) if model_ref in EXAMPLE_MODELS and not Path(model_ref).exists() else Path(model_ref)
-        spec = load_model_spec(spec_path)
-        model = CompartmentalModel(spec)
+        spec = load_named_spec(model_ref)
+        model = build_model(spec)
         try:
             start = dt.date.fromisoformat(args.start)
         except ValueError:

@@ -175,28 +175,23 @@ def _file_fact(path: Path) -> str:
 
 # ---------------------------------------------------------------- model (optional)
 def _load_model(name_or_path: str | None, fingerprint: str | None):
-    """The CompartmentalModel for a shipped example name or a spec path; None if unknown.
+    """The model (either family) for a shipped example name or a spec path; None if unknown.
 
     Raises ReportError when a model is found but its fingerprint differs."""
-    from filters import CompartmentalModel
-    from schemas import SpecError, example_model_path, load_model_spec
-    from schemas._model_spec import EXAMPLE_MODELS
+    from filters import build_model
+    from schemas import EXAMPLE_INDIVIDUAL_MODELS, EXAMPLE_MODELS, SpecError, load_named_spec
 
     if not name_or_path:
         return None
-    if name_or_path in EXAMPLE_MODELS:
-        path = example_model_path(name_or_path)
-    else:
-        path = Path(name_or_path)
-        if not path.is_file():
-            return None
+    if name_or_path not in (*EXAMPLE_MODELS, *EXAMPLE_INDIVIDUAL_MODELS) and not Path(name_or_path).is_file():
+        return None
     try:
-        model = CompartmentalModel(load_model_spec(path))
+        model = build_model(load_named_spec(name_or_path))
     except SpecError as exc:
-        raise ReportError(f"model spec {path}: {exc}") from None
+        raise ReportError(f"model spec {name_or_path}: {exc}") from None
     if fingerprint is not None and model.fingerprint() != fingerprint:
         raise ReportError(
-            f"model spec {path} has fingerprint {model.fingerprint()}, but the data were produced by a model with "
+            f"model spec {name_or_path} has fingerprint {model.fingerprint()}, but the data were produced by a model with "
             f"fingerprint {fingerprint}; pass the spec that produced them with --model"
         )
     return model
@@ -831,16 +826,28 @@ def build_checkpoint_report(checkpoint_dir: Path, stream: str | None, out: Path,
     path = page.figure(parts, "parameters.png", "weighted histograms of the parameters and R_eff",
                        "Weighted histograms of the cloud (solid line: median; dashed: 5 % and 95 %).")
     rf.histogram_grid(path, panels, cols=min(3, len(panels)))
-    sources = [f.source for f in model.spec.flows if f.infection]
-    c = model.compartments.index(sources[0]) if sources else (model.compartments.index("S") if "S" in model.compartments else -1)
-    if c >= 0:
-        sp = [(f"{model.compartments[c]}[{g}] / population", particles.states[:, k, c] / model.population[k], w, "share of the group")
-              for k, g in enumerate(model.groups)]
+    sp = _susceptible_shares(model, particles, w)
+    if sp:
         path = page.figure(parts, "susceptibles.png", "susceptible share per group",
                            "Share of each group still susceptible, across the cloud.")
         rf.histogram_grid(path, sp, cols=min(3, len(sp)))
     footer = f"casecloud current-state report of stream {_esc(stream)}; read-only; no wall-clock time is recorded."
     return _write(out, page.render(facts, footer))
+
+
+def _susceptible_shares(model, particles, w) -> list[tuple[str, Any, Any, str]]:
+    """Histogram panels of each group's susceptible share; [] when the model has no susceptible stock."""
+    if hasattr(model, "stage_counts"):  # individual-based: people per stage and band, kept in the history
+        susceptible = model.stage_counts(particles)[:, 0, :]
+        size = model.population.band_counts()
+        return [(f"S[{g}] / people", susceptible[:, k] / size[k], w, "share of the band")
+                for k, g in enumerate(model.groups) if size[k] > 0]
+    sources = [f.source for f in model.spec.flows if f.infection]
+    c = model.compartments.index(sources[0]) if sources else (model.compartments.index("S") if "S" in model.compartments else -1)
+    if c < 0:
+        return []
+    return [(f"{model.compartments[c]}[{g}] / population", particles.states[:, k, c] / model.population[k], w, "share of the group")
+            for k, g in enumerate(model.groups)]
 
 
 # ---------------------------------------------------------------- CLI

@@ -11,16 +11,12 @@ import numpy as np
 
 from filters import CompartmentalModel, FilterConfig, IndividualModel, ParticleFilter, build_model, stream_generator
 from schemas import (
-    EXAMPLE_INDIVIDUAL_MODELS,
     DeploymentConfig,
     IndividualModelSpec,
     ModelSpec,
     SpecError,
     StreamConfig,
-    example_individual_path,
-    example_model_path,
-    load_model_spec,
-    load_spec,
+    load_named_spec,
 )
 
 from ..errors import ConfigError
@@ -35,12 +31,7 @@ log = logging.getLogger("casecloud.streams")
 def load_stream_model(stream: StreamConfig) -> ModelSpec | IndividualModelSpec:
     """The stream's spec: a TOML path (either model family, by the file's top-level
     ``kind``), or the name of a shipped example."""
-    source = stream.model
-    if source.endswith(".toml"):
-        return load_spec(Path(source))
-    if source in EXAMPLE_INDIVIDUAL_MODELS:
-        return load_spec(example_individual_path(source))
-    return load_model_spec(example_model_path(source))
+    return load_named_spec(stream.model)
 
 
 @dataclass
