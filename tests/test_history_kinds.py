@@ -16,7 +16,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from filters import CompartmentalModel, Observation, ParticleFilter, FilterConfig, history_observations
+from filters import (
+    CompartmentalModel,
+    FilterConfig,
+    Observation,
+    ParticleFilter,
+    history_observations,
+)
 from schemas import SpecError, load_history, load_model_spec
 from service.cli import main
 
