@@ -15,7 +15,8 @@ Outcomes per scenario (each with mean and quantiles across trajectories;
 
 ``infections``
     New infections over the horizon (latent: every move along a flow marked
-    ``infection = true``, all groups), per trajectory.
+    ``infection = true``, all groups; in an individual-based model, every
+    person infected), per trajectory.
 ``cases``
     Reported cases over the horizon: the sum over ``cases_series`` (by
     default every daily incidence series of the model; if it has none, every
@@ -53,12 +54,13 @@ from typing import Any
 import numpy as np
 from scipy.stats import norm
 
-from schemas import BASELINE, Scenario, ScenarioFile, ScenarioThreshold
+from schemas import BASELINE, Scenario, ScenarioFile, ScenarioThreshold, SettingScenario, SettingScenarioFile
 
 from ._compartmental import CompartmentalModel
 from ._forecast import Forecast, forecast
 from ._interventions import Effects, compile_interventions
 from ._particles import ParticleSet
+from ._setting_effects import compile_setting_interventions
 
 __all__ = [
     "CAUTION",
@@ -268,7 +270,9 @@ class ScenarioReport:
 def _thresholds(
     given: Sequence[Any] | None, model: CompartmentalModel, horizon: int, notes: list[str]
 ) -> tuple[ThresholdCheck, ...]:
-    allowed = [s.name for s in model.series] + ([_LATENT_INFECTIONS] if model._infection_flows else [])
+    # Individual-based models count every infection person by person; compartmental ones need an infection flow.
+    latent = getattr(model, "_infection_flows", True)
+    allowed = [s.name for s in model.series] + ([_LATENT_INFECTIONS] if latent else [])
     out: list[ThresholdCheck] = []
     for i, item in enumerate(given or ()):
         if isinstance(item, ThresholdCheck):
@@ -321,15 +325,17 @@ def _cases_series(model: CompartmentalModel, given: Sequence[str] | None) -> tup
     return chosen, ("weekly" if cadences.pop() else "daily")
 
 
-def _scenarios(scenarios: Any) -> tuple[list[Scenario], list[ScenarioThreshold]]:
+def _scenarios(scenarios: Any) -> tuple[list[Any], list[ScenarioThreshold]]:
     if isinstance(scenarios, ScenarioFile):
         return scenarios.all_scenarios(), list(scenarios.thresholds)
-    if isinstance(scenarios, Scenario):
+    if isinstance(scenarios, SettingScenarioFile):
+        return list(scenarios.scenarios), []
+    if isinstance(scenarios, (Scenario, SettingScenario)):
         return [scenarios], []
     out = list(scenarios)
     for i, s in enumerate(out):
-        if not isinstance(s, Scenario):
-            raise ValueError(f"scenarios[{i}] must be a schemas.Scenario, got {type(s).__name__}")
+        if not isinstance(s, (Scenario, SettingScenario)):
+            raise ValueError(f"scenarios[{i}] must be a schemas.Scenario or SettingScenario, got {type(s).__name__}")
     names = [s.name for s in out]
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
@@ -401,7 +407,9 @@ def run_scenarios(
     ----------
     model, particles, weights, start : the cloud and its model day (not modified).
     scenarios : a :class:`schemas.ScenarioFile` (its thresholds are used too),
-        one :class:`schemas.Scenario` or a sequence of them; the ``baseline``
+        one :class:`schemas.Scenario` or a sequence of them; for an
+        individual-based model, a :class:`schemas.SettingScenarioFile` or
+        :class:`schemas.SettingScenario` (interventions on settings); the ``baseline``
         (no change) is always run first and must not be among them.
     horizon : days ahead; n_trajectories : simulated futures per scenario.
     seed : a non-negative int; the same seed gives the same report.
@@ -429,7 +437,8 @@ def run_scenarios(
     effects: dict[str, Effects | None] = {BASELINE: None}
     described: dict[str, tuple[str, tuple[str, ...]]] = {BASELINE: ("no change", ())}
     for s in chosen:
-        compiled = compile_interventions(model, s, start)
+        # Interventions on settings (individual-based models) draw their quarantine detections from the run's seed.
+        compiled = compile_setting_interventions(model, s, start, seed) if isinstance(s, SettingScenario) else compile_interventions(model, s, start)
         effects[s.name] = compiled
         described[s.name] = (s.description, compiled.labels)
         for j, item in enumerate(s.interventions):

@@ -72,19 +72,26 @@ class SettingEffects:
         self._seed = int(seed)
         self._state: tuple[int, _Quarantine] | None = None
         community = len(self.places) - 1
+        labels: list[str] = []
         for item in scenario.interventions:
             start = origin + item.start_day
             end = None if item.end_day is None else origin + item.end_day
+            days = f"days {item.start_day}-{item.end_day - 1}" if item.end_day is not None else f"from day {item.start_day}"
             if isinstance(item, CloseSetting):
                 self._windows.append((start, end, self._column(item.setting), 0.0))
+                labels.append(f"{item.setting} closed ({days})")
             elif isinstance(item, Attendance):
                 self._windows.append((start, end, self._column(item.setting), item.share**2))
+                labels.append(f"{item.setting} attendance {item.share:g}, contacts x{item.share**2:g} ({days})")
             elif isinstance(item, CommunityChange):
                 self._windows.append((start, end, community, item.factor))
+                labels.append(f"community contacts x{item.factor:g} ({days})")
             elif isinstance(item, HouseholdQuarantine):
                 self._quarantine = (item.detected, item.days, start, end)
+                labels.append(f"households of detected cases ({item.detected:g} of onsets) home {item.days} days ({days})")
             else:  # pragma: no cover - the schema admits no other kind
                 raise TypeError(f"intervention {item!r} not known")
+        self.labels = tuple(labels)
 
     def _column(self, setting: str) -> int:
         if setting not in self.places[1:-1]:

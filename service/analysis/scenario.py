@@ -141,8 +141,8 @@ def _checkpoint_store(config: Any, local: Any) -> tuple[Any, str]:
 
 def run_scenario_command(args: argparse.Namespace) -> int:
     """Entry point of ``casecloud scenario``."""
-    from filters import CompartmentalModel, ParticleFilter, run_scenarios
-    from schemas import SpecError, load_deployment_config, load_scenario_file
+    from filters import ParticleFilter, build_model, run_scenarios
+    from schemas import IndividualModelSpec, SpecError, load_deployment_config, load_scenario_file, load_setting_scenarios
 
     from ..runtime.streams import load_stream_model
     from ..state import CheckpointError, LocalCheckpointStore
@@ -165,21 +165,21 @@ def run_scenario_command(args: argparse.Namespace) -> int:
         spec = load_stream_model(stream)
     except (SpecError, ValueError) as exc:
         return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
-    if getattr(spec, "kind", None) == "individual":
-        return _fail(
-            f"stream {stream.id!r} runs an individual-based model ({stream.model!r}); casecloud scenario runs "
-            "compartmental streams; individual-based scenarios on settings run with filters.run_setting_scenarios "
-            "(see schemas/POPULATION.md)",
-            2,
-        )
+    individual = False
     try:
-        model = CompartmentalModel(spec, window_days=stream.assimilation_window_days)
-    except (SpecError, ValueError) as exc:
-        return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
-    try:
-        scenario_file = load_scenario_file(args.scenarios, model.spec)
+        model = build_model(spec, window_days=stream.assimilation_window_days)
+        individual = isinstance(spec, IndividualModelSpec)
+        if individual:  # interventions act on the town's settings
+            scenario_file = load_setting_scenarios(args.scenarios, spec)
+        else:
+            scenario_file = load_scenario_file(args.scenarios, spec)
     except SpecError as exc:
+        if individual:
+            return _fail(f"stream {stream.id!r} is individual-based: its scenario file takes interventions on settings "
+                         f"(close, attendance, community, household_quarantine; see schemas/POPULATION.md)\n{exc}", 2)
         return _fail(str(exc), 2)
+    except ValueError as exc:
+        return _fail(f"stream {stream.id!r}: model {stream.model!r} is unusable: {exc}", 2)
 
     store, root = _checkpoint_store(config, LocalCheckpointStore)
     try:
@@ -243,7 +243,12 @@ def add_scenario_parser(sub: Any) -> None:
     )
     p.add_argument("--config", required=True, help="deployment config TOML (its checkpoint_dir and streams)")
     p.add_argument("--stream", required=True, help="stream id")
-    p.add_argument("--scenarios", required=True, help="scenario TOML file (see schemas/scenarios/)")
+    p.add_argument(
+        "--scenarios",
+        required=True,
+        help="scenario TOML file (see schemas/scenarios/); for an individual-based stream, a file of interventions "
+        "on settings (see schemas/POPULATION.md)",
+    )
     p.add_argument("--trajectories", type=int, default=2000, help="simulated futures per scenario (default 2000)")
     p.add_argument(
         "--horizon", type=int, help="days ahead (default: the file's horizon_days, else the stream's forecast_horizon_days)"
