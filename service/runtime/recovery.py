@@ -346,17 +346,25 @@ def migrate_stream(
     import numpy as np
 
     from filters import CompartmentalModel, FilterConfig, ParticleFilter, ParticleSet
+    from schemas import IndividualModelSpec
 
     from .streams import load_stream_model
 
     _check_stream(config, stream_id)
     with _opened(config, store) as store:
         s = next(x for x in config.streams if x.id == stream_id)
-        new_model = CompartmentalModel(load_stream_model(s), window_days=s.assimilation_window_days)
+        new_spec = load_stream_model(s)
         loaded = store.load_latest(stream_id, expected_fingerprint=None)
         if loaded is None:
             raise ServiceError(f"stream {stream_id!r} has no checkpoint to migrate; nothing was done")
         cp = loaded.checkpoint
+        if isinstance(new_spec, IndividualModelSpec) or (cp.header.get("spec") or {}).get("kind") == "individual":
+            raise ServiceError(
+                f"stream {stream_id!r}: migrate maps compartmental clouds only; an individual-based cloud holds each "
+                "person's state in one town, which another spec need not share. Rebuild the stream under the new "
+                "spec instead (`casecloud stream rebuild`; runbook: Upgrading a model spec); nothing was done"
+            )
+        new_model = CompartmentalModel(new_spec, window_days=s.assimilation_window_days)
         old_spec_name = cp.header.get("model")
         old_fp = cp.header["filter"]["model_fingerprint"]
         if old_fp == new_model.fingerprint():

@@ -205,3 +205,20 @@ def test_calibrate_fits_the_static_parameters_of_an_individual_model(town, capsy
     assert len(draws) == 2 * (16 - 4) and set(draws[0]) == {"chain", "iteration", "beta_school", "rho", "log_posterior"}
     assert all(float(d["beta_school"]) > 0 and 0 < float(d["rho"]) < 1 for d in draws)
     assert all(math.isfinite(float(d["log_posterior"])) for d in draws)
+
+
+def test_stream_migrate_refuses_an_individual_based_stream_and_touches_nothing(town, capsys):
+    """Bad input: `stream migrate` on a town's cloud (a revised individual spec) gets exit 1, a
+    message pointing to `stream rebuild`, and leaves the checkpoints as they were."""
+    revised = town / "revised"
+    revised.mkdir()
+    (revised / "thornby_town.toml").write_text(TOWN, encoding="utf-8")
+    (revised / "thornby_flu.toml").write_text(MODEL.replace("importation = 0.3", "importation = 0.5"), encoding="utf-8")
+    config = CONFIG.replace('model = "thornby_flu.toml"', 'model = "revised/thornby_flu.toml"')
+    (town / "revised.toml").write_text(config, encoding="utf-8")
+    before = {p: p.read_bytes() for p in sorted((town / "ck").rglob("*")) if p.is_file()}
+    code = cli.main(["stream", "migrate", "--config", str(town / "revised.toml"), "--stream", STREAM])
+    err = capsys.readouterr().err
+    assert code == 1
+    assert "individual-based" in err and "stream rebuild" in err and "nothing was done" in err
+    assert {p: p.read_bytes() for p in sorted((town / "ck").rglob("*")) if p.is_file()} == before
