@@ -474,15 +474,41 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
             effects.check_model(self)
         counts, history = particles.states, particles.history
         n = counts.shape[0]
+        track = bool(history.shape[1])
+        if track:
+            # The day's incidence is summed in a buffer with one contiguous (n, G)
+            # block per slot and written to history[:, 0] once the day is done
+            # (nothing reads it mid-day).
+            incidence = np.empty((len(self._observed_flows), n, self.n_groups), dtype=history.dtype)
+        # Each compartment's (n, G) counts as a contiguous copy, written back to
+        # ``counts`` when the days are done (or a guard stops them): the in-place
+        # updates and the binomial draws of every sub-step then run over
+        # contiguous memory instead of a stride-C view. Same values, same draws.
+        columns = [np.ascontiguousarray(counts[:, :, c]) for c in range(self.n_compartments)]
+        try:
+            self._advance_days(particles, t0, t1, rng, effects, columns, incidence if track else None)
+        finally:
+            for c, column in enumerate(columns):
+                counts[:, :, c] = column
+
+    def _advance_days(
+        self,
+        particles: ParticleSet,
+        t0: int,
+        t1: int,
+        rng: np.random.Generator,
+        effects: Any,
+        columns: list[np.ndarray],
+        incidence: np.ndarray | None,
+    ) -> None:
+        """The day loop of :meth:`advance` over the compartments' (n, G) ``columns``;
+        ``incidence`` (slots, n, G) is the day's buffer (None: no history kept)."""
+        history = particles.history
+        n = columns[0].shape[0]
         slots = self._observed_flows
         dt = self.dt
         n_flows = len(self._flow_rates)
-        track = bool(history.shape[1])
-        if track:
-            # The day's incidence is summed in a contiguous buffer and written
-            # to history[:, 0] once the day is done (nothing reads it mid-day).
-            incidence = np.empty((n, len(slots), self.n_groups), dtype=history.dtype)
-        columns = [counts[:, :, c] for c in range(self.n_compartments)]  # views, updated in place
+        track = incidence is not None
         for day in range(t0, t1):
             self._drift(particles.params, rng)
             scalars = self._scalars(particles.params, day)
@@ -491,10 +517,10 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
                 incidence.fill(0)
             today = None if effects is None else effects.on_day(day)
             if today is not None:
-                self._day_with_effects(today, day, day_env, scalars, columns, n, rng, incidence if track else None)
+                self._day_with_effects(today, day, day_env, scalars, columns, n, rng, incidence)
                 if track:
                     _shift_days(history)
-                    history[:, 0] = incidence
+                    history[:, 0] = incidence.transpose(1, 0, 2)
                 continue
             # Rates, leave probabilities and shares that are fixed for the day.
             rates: list = [None] * n_flows
@@ -521,10 +547,10 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
                     columns[c_to] += moves[f]
                 if track:
                     for k, f in enumerate(slots):
-                        incidence[:, k] += moves[f]
+                        incidence[k] += moves[f]
             if track:
                 _shift_days(history)
-                history[:, 0] = incidence
+                history[:, 0] = incidence.transpose(1, 0, 2)
 
     def _day_with_effects(
         self,
@@ -618,7 +644,7 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
                 columns[c_to] += moved
             if incidence is not None:
                 for k, f in enumerate(self._observed_flows):
-                    incidence[:, k] += moves[f]
+                    incidence[k] += moves[f]
 
     def _probabilities_with_extra(
         self, rates: list, flows: list[int], extra: list | None
