@@ -432,9 +432,8 @@ class IndividualModel(ObservedSeries, ParameterScales):
         # np.take gathers rows several times faster than fancy indexing.
         rates = np.take(self._rates(params, None if factors is None else factors[:, :-1]), inf_particle, axis=0)
         rates *= np.take(self._person_factor, inf_person, axis=0)
-        silent = code[inf_at] >= ASYMPTOMATIC_BASE
-        if self.relative != 1.0 and silent.any():
-            rates[silent] *= self.relative
+        if self.relative != 1.0:  # asymptomatic cases: a column of weights, cheaper than a boolean row gather
+            rates *= np.where(code[inf_at] >= ASYMPTOMATIC_BASE, self.relative, 1.0)[:, None]
         household = self.population.households.venue
         if quarantine is not None:  # cases whose household stays at home infect no one outside it
             rates[quarantine.home(inf_particle, household[inf_person], day), 1:] = 0.0
