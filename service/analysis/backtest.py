@@ -31,6 +31,33 @@ for every method, so all methods are scored on the same targets):
   Funk et al. (2019). Lower is better for WIS, CRPS and the log score.
   Quantiles are numpy's linear interpolation of the draws.
 
+Evidence other than counts
+--------------------------
+``per_origin`` rows say each target's ``kind`` (the series kind), ``tests`` (positivity),
+``lod`` and ``censored`` (concentration; 1: the sample was below its limit or not detected).
+
+Positivity series. A forecast holds each trajectory's share positive, but how many tests a future
+day brings is not known at the origin. Positives are scored **conditional on the realised number
+of tests** (the target row's ``<series>.tests``): each trajectory's share is turned into positives
+out of those tests with the series' own noise (binomial, or beta-binomial with the trajectory's
+concentration), and those draws are scored as counts (all the scores above). The number of tests is
+taken as given, not forecast: scores say how well the share positive was foreseen, on the scale of
+what was reported. (Scoring the positive fraction y / n against shares without test noise would
+reward an over-confident forecast on days with few tests.)
+
+Concentration series (continuous). Draws are the trajectories' measured levels (at the sample's
+flow when the series has a ``reference_flow``). CRPS, WIS, coverage and bias come from the draws
+(Gneiting & Raftery 2007's sample CRPS; bias ``1 - 2 P(X <= y)``, the continuous form of Funk et
+al. 2019). A target with a limit of detection is scored on the scale the lab sees, max(value, lod)
+for both draws and observation: a sample not detected is then exactly "lod", and the CRPS is the
+threshold-weighted CRPS with weight 1{z >= lod} (Gneiting & Ranjan 2011, "Comparing density
+forecasts using threshold- and quantile-weighted scoring rules", JBES 29). The log score is exact,
+not smoothed: ``-log`` of the predictive density at the value, the equally weighted mixture over
+trajectories of the series' measurement law (log-normal or log-Student-t around each trajectory's
+expected level, with its noise sd), which the model knows in closed form, so no kernel density
+estimate or bandwidth enters; a censored sample is scored by ``-log`` of the predictive probability
+of falling below its limit. (A noise sd or concentration that drifts is read at the origin.)
+
 Baselines (same origins and targets, same number of draws, scored the same way)
 ------------------------------------------------------------------------------
 ``persistence``
@@ -46,6 +73,14 @@ Baselines (same origins and targets, same number of draws, scored the same way)
     log-mean is drawn from the normal predictive of the fit (residual variance
     times ``1 + 1/n + (x - xbar)^2 / Sxx``), then ``count ~ Poisson(exp(eta) - 1)``
     (clipped at 0 and at 10^9).
+
+For a positivity series both baselines work on the empirical logit of the share positive,
+``log((y + 0.5) / (n - y + 0.5))``, and draw positives binomially out of the target's realised
+tests; for a concentration series on ``log(value)`` (a past sample below its limit enters at half
+the limit, common practice), the predictive level being log-normal, so its log score is exact. On
+these scales persistence is a random walk (normal, variance ``s2 * h / spacing``) and trend the
+least-squares line's normal predictive, the sd at least 0.1 (a flat past, e.g. samples all
+below the limit, would otherwise give a near point mass).
 
 Alerts
 ------
@@ -159,6 +194,7 @@ from filters import (
     roc_curve,
     weighted_interval_score,
 )
+from filters._observation import log_concentration_loglik
 
 __all__ = [
     "CAUTIONS",
@@ -192,6 +228,7 @@ CAUTIONS_VINTAGES = (  # runs on a history with data vintages (an as_of column)
     "not guarantee future performance."
 )
 MIN_PAST = 3  # observed values of a series needed at an origin before it is scored
+MIN_LOG_SD = 0.1  # baselines' predictive sd on the log (logit) scale is at least this: a flat past gives no point mass
 _NOWCAST_KEY = 99  # last word of the nowcast draws' seed (deployment seed, stream words, step, this)
 TREND_DAYS = 14
 _LEVELS = np.asarray(FORECAST_LEVELS)
@@ -200,6 +237,7 @@ SCORE_KEYS = ("method", "series", "horizon", "n", "wis", "crps", "coverage_50", 
 ORIGIN_KEYS = (
     "method", "series", "origin_period", "origin_day", "horizon", "target_period", "observed",
     "median", "q05", "q25", "q75", "q95", "wis", "crps", "log_score",
+    "kind", "tests", "lod", "censored",
 )  # fmt: skip
 VINTAGE_ORIGIN_KEYS = ORIGIN_KEYS + ("as_of",)  # per_origin rows of runs with vintages
 NOWCAST_SCORE_KEYS = ("method", "series", "periods_back", "n", "wis", "crps", "coverage_50", "coverage_90", "log_score", "bias")
@@ -223,6 +261,7 @@ class _Origin:
     as_of: dt.date | None = None  # runs with vintages: the as-of date the origin closes
     nowcast: dict[tuple[str, int], np.ndarray] | None = None  # (series, model day) -> (M,) eventual-count draws
     estimate: int | None = None  # index of the estimate published last at the origin
+    extra: dict[str, Any] | None = None  # concentration series: expected levels and trajectory parameters
 
 
 def _words(stream: str) -> list[int]:
@@ -260,14 +299,15 @@ def persistence_draws(past_days: np.ndarray, past: np.ndarray, horizons: list[in
     return out
 
 
-def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizons: list[int], m: int, rng) -> np.ndarray:
-    """(m, len(horizons)) draws of the log-linear trend baseline (see the module docstring)."""
+def _trend_normal(past_days: np.ndarray, z: np.ndarray, origin_day: int, horizons: list[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Normal predictive (mean, variance) per horizon of a least-squares line through ``z`` (a
+    transformed series) over the rows of the last TREND_DAYS days (at least the last MIN_PAST)."""
     recent = past_days > origin_day - TREND_DAYS
     if recent.sum() < MIN_PAST:
-        recent = np.zeros(past.size, dtype=bool)
+        recent = np.zeros(z.size, dtype=bool)
         recent[-MIN_PAST:] = True
     x = past_days[recent].astype(float)
-    z = np.log(past[recent].astype(float) + 1.0)
+    z = z[recent]
     n = x.size
     xbar = x.mean()
     sxx = float(np.sum((x - xbar) ** 2))
@@ -275,14 +315,47 @@ def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizo
     intercept = float(z.mean() - slope * xbar)
     resid = z - (intercept + slope * x)
     s2 = float(np.sum(resid**2) / (n - 2)) if n > 2 else 0.0
+    x1 = origin_day + np.asarray(horizons, dtype=float)
+    var = s2 * (1 + 1 / n + ((x1 - xbar) ** 2 / sxx if sxx > 0 else 0.0))
+    return intercept + slope * x1, var
+
+
+def trend_draws(past_days: np.ndarray, past: np.ndarray, origin_day: int, horizons: list[int], m: int, rng) -> np.ndarray:
+    """(m, len(horizons)) draws of the log-linear trend baseline (see the module docstring)."""
+    mean, var = _trend_normal(past_days, np.log(past.astype(float) + 1.0), origin_day, horizons)
     out = np.empty((m, len(horizons)), dtype=np.int64)
-    for j, h in enumerate(horizons):
-        x1 = origin_day + h
-        var = s2 * (1 + 1 / n + ((x1 - xbar) ** 2 / sxx if sxx > 0 else 0.0))
-        eta = intercept + slope * x1 + math.sqrt(var) * rng.standard_normal(m)
+    for j in range(len(horizons)):
+        eta = float(mean[j]) + math.sqrt(float(var[j])) * rng.standard_normal(m)
         lam = np.clip(np.expm1(np.minimum(eta, math.log(1e9))), 0.0, 1e9)
         out[:, j] = rng.poisson(lam)
     return out
+
+
+def _persistence_normal(past_days: np.ndarray, z: np.ndarray, horizons: list[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Random-walk predictive (mean, variance) per horizon of a transformed series ``z``: the last
+    value, variance ``s2 * h / spacing`` (``s2`` the mean squared one-step change so far)."""
+    diffs = np.diff(z)
+    s2 = float(np.mean(diffs**2)) if diffs.size else 0.0
+    spacing = float(np.median(np.diff(past_days))) if past_days.size > 1 else 1.0
+    h = np.asarray(horizons, dtype=float)
+    return np.full(h.size, float(z[-1])), s2 * h / max(spacing, 1.0)
+
+
+def _scale_baseline(kind: str, method: str, past_days, past, past_tests, origin_day, horizons, target_tests, m, rng):
+    """Baseline draws for a positivity or concentration series, and the normal predictive (mean, sd)
+    of their log-scale level (concentration) for the exact log score (module docstring, "Evidence
+    other than counts")."""
+    if kind == "positivity":
+        z = np.log((past + 0.5) / (past_tests - past + 0.5))  # empirical logit of the share positive
+    else:
+        z = np.log(past)
+    mean, var = (_persistence_normal(past_days, z, horizons) if method == "persistence"
+                 else _trend_normal(past_days, z, origin_day, horizons))  # fmt: skip
+    sd = np.sqrt(np.maximum(var, MIN_LOG_SD**2))
+    eta = mean + sd * rng.standard_normal((m, len(horizons)))
+    if kind == "positivity":
+        return rng.binomial(np.asarray(target_tests, dtype=np.int64), 1.0 / (1.0 + np.exp(-eta))), None
+    return np.exp(np.minimum(eta, 700.0)), (mean, sd)
 
 
 # -------------------------------------------------------------------- replay
@@ -313,12 +386,21 @@ def _published(transport) -> tuple[list[dict], list[dict], list[dict]]:
 
 
 def _forecast_draws(config, runtime, stream_id: str, series_names, hmax: int, cols: list[int], trajectories: int):
+    """(draws, extra): series -> (M, len(cols)) draws; ``extra`` holds, for concentration series, the
+    trajectories' expected (median) levels (``expected``) and the parameters of the particle each
+    trajectory started from (``params``, (M, n_params)), which the exact log score needs."""
     pf = runtime.filter
     fc = forecast(
         runtime.model, pf.particles, pf.weights(), pf.time, hmax, trajectories,
         seed=origin_seed(config.service.seed, stream_id, pf.step_count),
     )  # fmt: skip
-    return {name: np.array(fc.reported[name][:, cols]) for name in series_names}
+    draws = {name: np.array(fc.reported[name][:, cols]) for name in series_names}
+    kinds = _kinds(runtime.model)
+    extra: dict[str, Any] = {"expected": {}, "params": None}
+    if any(kinds.get(name) in ("positivity", "concentration") for name in series_names):
+        extra["params"] = np.array(pf.particles.params[fc.ancestors])
+        extra["expected"] = {name: np.array(fc.expected[name][:, cols]) for name in series_names if kinds.get(name) == "concentration"}
+    return draws, extra
 
 
 def _replay(config, history, stream_id: str, horizons: list[int], trajectories: int, checkpoint_dir: Path, progress=None):
@@ -347,9 +429,9 @@ def _replay(config, history, stream_id: str, horizons: list[int], trajectories: 
             return
         runtime = service.registry.runtimes[stream_id]
         pf = runtime.filter
-        draws = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
+        draws, extra = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
         date = scfg.start + dt.timedelta(days=int(runtime.last_day))
-        origins.append(_Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws))
+        origins.append(_Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws, extra=extra))
 
     service.on_outcome = hook
     counts = asyncio.run(service.run(until_exhausted=True))
@@ -410,13 +492,13 @@ def _replay_vintages(config, history, stream_id: str, horizons: list[int], traje
         applied[0] = False
         runtime = service.registry.runtimes[stream_id]
         pf = runtime.filter
-        draws = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
+        draws, extra = _forecast_draws(config, runtime, stream_id, series_names, hmax, cols, trajectories)
         rng = np.random.default_rng(np.random.SeedSequence([int(config.service.seed), *_words(stream_id), int(pf.step_count), _NOWCAST_KEY]))
         nowcasts = nowcast_draws(runtime.model, pf.particles, pf.weights(), runtime.known, pf.time, trajectories, rng)
         date = scfg.start + dt.timedelta(days=int(runtime.last_day))
         origins.append(
             _Origin(str(runtime.last_period), int(runtime.last_day), date, pf.step_count, draws,
-                    as_of=known[i], nowcast=nowcasts, estimate=len(transport.published["estimates"]) - 1)
+                    as_of=known[i], nowcast=nowcasts, estimate=len(transport.published["estimates"]) - 1, extra=extra)
         )  # fmt: skip
 
     service.on_outcome = hook
@@ -592,7 +674,7 @@ def run_backtest(
         model, scfg, series_names, origins, estimates, alerts, dead, counts = replay(config, history, stream_id, horizons, m, where, progress)
     seed = config.service.seed
     complete = _complete(history, model, scfg.start) if vintaged else None
-    per_origin, scores = _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete)
+    per_origin, scores = _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete, model)
     alert_rows = _alert_rows(history, scfg, origins, estimates, alerts)
     for row in alert_rows:  # kept internal: not part of the documented document
         row.pop("n_origins"), row.pop("n_events")
@@ -614,7 +696,8 @@ def run_backtest(
         doc.update(nowcast_methods=list(NOWCAST_METHODS), nowcast_scores=nc_scores, nowcast_per_origin=nc_rows,
                    cautions=CAUTIONS_VINTAGES)  # fmt: skip
     doc["_replay"] = {"counts": counts, "estimates": estimates, "alerts": alerts,
-                      "dead_letters": [d["reason"] for d in dead], "trajectories": m}  # fmt: skip
+                      "dead_letters": [d["reason"] for d in dead], "trajectories": m,
+                      "origins": origins}  # fmt: skip
     return doc
 
 
@@ -637,67 +720,147 @@ def _complete(history, model, start: dt.date) -> dict[str, np.ndarray]:
     return out
 
 
-def _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete):
+def _casecloud_positives(model, series: str, o: _Origin, targets: list[int], tests: np.ndarray, rng) -> np.ndarray:
+    """(M, k) positives out of the realised ``tests`` per target, from each trajectory's share positive:
+    binomial, or beta-binomial with the trajectory's concentration phi (its particle's parameter)."""
+    s = model.series_named(series)
+    p = np.clip(o.draws[series][:, targets], 0.0, 1.0)
+    if s.noise == "betabinomial":
+        phi = s.dispersion if s.dispersion_param is None else o.extra["params"][:, [s.dispersion_param]]
+        phi = np.broadcast_to(phi, p.shape)
+        inner = (p > 0) & (p < 1)  # p of exactly 0 or 1 is a point mass
+        p = np.where(inner, rng.beta(np.where(inner, p * phi, 1.0), np.where(inner, (1.0 - p) * phi, 1.0)), p)
+    return rng.binomial(np.broadcast_to(tests.astype(np.int64), p.shape), p)
+
+
+def _level_log_score(y: float, medians: np.ndarray, sd: np.ndarray | float, lod: float | None, df: float | None) -> float:
+    """-log of the predictive density of a concentration ``y`` (or of P(below ``lod``) when censored):
+    the equally weighted mixture over trajectories of the measurement law around each median."""
+    logs = log_concentration_loglik(y, medians, sd, lod, df)
+    return float(-(np.logaddexp.reduce(logs) - math.log(logs.size)))
+
+
+def _censored(y: float, lod: float | None) -> bool:
+    return lod is not None and y < lod
+
+
+def _score_levels(draws: np.ndarray, y: np.ndarray, lods: list[float | None], log_scores: np.ndarray) -> dict[str, np.ndarray]:
+    """Scores of (M, k) level draws against k samples, each on the scale of what its lab can see: a
+    target with a limit of detection compares max(X, lod) with max(y, lod) (censored from below; for a
+    sample not detected, max(y, lod) = lod is exactly what is known). CRPS on that scale is the
+    threshold-weighted CRPS with weight 1{z >= lod} (Gneiting & Ranjan 2011). The bias is the
+    continuous form 1 - 2 P(X <= y) (Funk et al. 2019); ``log_scores`` come exact from the densities."""
+    floor = np.array([0.0 if v is None else v for v in lods])
+    x = np.maximum(draws, floor)
+    yy = np.maximum(y, floor)
+    q = np.quantile(x, _LEVELS, axis=0)
+    return {
+        "q": q,
+        "wis": weighted_interval_score(_LEVELS, q, yy),
+        "crps": crps_from_samples(x, yy),
+        "cov50": ((q[_IDX[0.25]] <= yy) & (yy <= q[_IDX[0.75]])).astype(float),
+        "cov90": ((q[_IDX[0.05]] <= yy) & (yy <= q[_IDX[0.95]])).astype(float),
+        "log": np.asarray(log_scores, dtype=float),
+        "bias": 1.0 - 2.0 * np.mean(x <= yy, axis=0),
+    }
+
+
+def _score_forecasts(history, origins, series_names, horizons, m, seed, stream_id, complete, model=None):
     """per_origin rows and scores rows of the forecasts (module docstring). ``complete`` is None for a
     history without vintages; with vintages it marks the periods whose eventual count can be a target,
-    and the baselines see the counts known at each origin's as-of date."""
+    and the baselines see the counts known at each origin's as-of date. ``model``: the stream's model
+    (series kinds and measurement laws; None: every series a count)."""
+    kinds = _kinds(model) if model is not None else {}
     first = history.dates[0]
     per_origin: list[dict[str, Any]] = []
     acc: dict[tuple[str, str, int], dict[str, list[float]]] = {}
     date_index = {d: i for i, d in enumerate(history.dates)}
     all_days = np.array([(d - first).days for d in history.dates], dtype=np.int64)
-    known_at: dict[dt.date, list[dict[str, int | None]]] = {}
+    known_at: dict[dt.date, list[dict[str, Any]]] = {}
+    tests_of = lambda i, name: history.tests[i].get(name) if history.tests else None
+    lod_of = lambda i, name: history.limits[i].get(name) if history.limits else None
+    flow_of = lambda i, name: history.flows[i].get(name) if history.flows else None
     for si, series in enumerate(series_names):
-        days, vals, _ = _realised(history, series)
+        kind = kinds.get(series, "incidence")
+        level = kind == "concentration"
         for o in origins:
             oday = (o.date - first).days
             if complete is None:
-                past = days <= oday
-                past_days, past_vals = days[past], vals[past]
+                rows = history.values
             else:
                 if o.as_of not in known_at:
                     known_at[o.as_of] = history.as_known(o.as_of)
-                seen = [i for i, v in enumerate(known_at[o.as_of]) if all_days[i] <= oday and v.get(series) is not None]
-                past_days = all_days[seen]
-                past_vals = np.array([known_at[o.as_of][i][series] for i in seen], dtype=np.int64)
+                rows = known_at[o.as_of]
+            seen = [i for i, v in enumerate(rows) if all_days[i] <= oday and v.get(series) is not None]
+            past_days = all_days[seen]
+            past_vals = np.array([rows[i][series] for i in seen], dtype=float if level else np.int64)
             if past_days.size < MIN_PAST:
                 continue
-            targets, ys, hs = [], [], []
+            targets, ys, hs, rows_t = [], [], [], []
             for j, h in enumerate(horizons):
                 i = date_index.get(o.date + dt.timedelta(days=h))
                 if i is not None and history.values[i].get(series) is not None and (complete is None or complete[series][i]):
                     targets.append(j)
                     ys.append(history.values[i][series])
                     hs.append(h)
+                    rows_t.append(i)
             if not targets:
                 continue
             y = np.asarray(ys, dtype=float)
-            draws = {
-                "casecloud": o.draws[series][:, targets],
-                "persistence": persistence_draws(past_days, past_vals, hs, m, _baseline_rng(seed, stream_id, o.step, 0, si)),
-                "trend": trend_draws(past_days, past_vals, oday, hs, m, _baseline_rng(seed, stream_id, o.step, 1, si)),
-            }
+            brng = (_baseline_rng(seed, stream_id, o.step, 0, si), _baseline_rng(seed, stream_id, o.step, 1, si))
+            tests_t = np.array([tests_of(i, series) or 0 for i in rows_t], dtype=np.int64)
+            lods_t = [lod_of(i, series) for i in rows_t]
+            if kind == "positivity":
+                past_tests = np.array([tests_of(i, series) for i in seen], dtype=float)
+                draws = {"casecloud": _casecloud_positives(model, series, o, targets, tests_t, _baseline_rng(seed, stream_id, o.step, 3, si))}
+                for b, method in enumerate(("persistence", "trend")):
+                    draws[method], _ = _scale_baseline(kind, method, past_days, past_vals.astype(float), past_tests, oday, hs, tests_t, m, brng[b])
+                sc = {method: _score_block(draws[method], y) for method in METHODS}
+            elif level:
+                # past samples not detected (or below their limit) enter the baselines at half the limit (common practice)
+                past_lods = [lod_of(i, series) for i in seen]
+                past = np.array([v / 2 if _censored(x, v) else x for x, v in zip(past_vals, past_lods)], dtype=float)
+                spec = model.series_named(series)
+                sh = spec.shedding
+                dil = np.array([sh.reference_flow / f if (f := flow_of(i, series)) and sh.reference_flow else 1.0 for i in rows_t])
+                sd = sh.noise_sd[0] if sh.noise_sd[1] is None else o.extra["params"][:, sh.noise_sd[1]]
+                medians = o.extra["expected"][series][:, targets] * dil
+                draws = {"casecloud": o.draws[series][:, targets] * dil}
+                logs = {"casecloud": np.array([_level_log_score(y[k], medians[:, k], sd, lods_t[k], sh.df) for k in range(len(hs))])}
+                for b, method in enumerate(("persistence", "trend")):
+                    draws[method], (mu, bsd) = _scale_baseline(kind, method, past_days, past, None, oday, hs, None, m, brng[b])
+                    logs[method] = np.array([_level_log_score(y[k], np.exp([mu[k]]), bsd[k], lods_t[k], None) for k in range(len(hs))])
+                sc = {method: _score_levels(draws[method], y, lods_t, logs[method]) for method in METHODS}
+            else:
+                draws = {
+                    "casecloud": o.draws[series][:, targets],
+                    "persistence": persistence_draws(past_days, past_vals, hs, m, brng[0]),
+                    "trend": trend_draws(past_days, past_vals, oday, hs, m, brng[1]),
+                }
+                sc = {method: _score_block(draws[method], y) for method in METHODS}
             for method in METHODS:
-                sc = _score_block(draws[method], y)
                 for k, h in enumerate(hs):
-                    target = history.periods[date_index[o.date + dt.timedelta(days=h)]]
-                    q = sc["q"][:, k]
+                    q = sc[method]["q"][:, k]
                     row = {
                         "method": method,
                         "series": series,
                         "origin_period": o.period,
                         "origin_day": o.day,
                         "horizon": h,
-                        "target_period": target,
-                        "observed": int(ys[k]),
-                        **_quantile_scores(q, sc, k),
+                        "target_period": history.periods[rows_t[k]],
+                        "observed": _r(ys[k]) if level else int(ys[k]),
+                        **_quantile_scores(q, sc[method], k),
+                        "kind": kind,
+                        "tests": int(tests_t[k]) if kind == "positivity" else None,
+                        "lod": lods_t[k] if level else None,
+                        "censored": int(_censored(ys[k], lods_t[k])) if level else None,
                     }
                     if complete is not None:
                         row["as_of"] = o.as_of.isoformat()
                     per_origin.append(row)
                     bucket = acc.setdefault((method, series, h), {k2: [] for k2 in ("wis", "crps", "cov50", "cov90", "log", "bias")})
                     for k2 in bucket:
-                        bucket[k2].append(float(sc[k2][k]))
+                        bucket[k2].append(float(sc[method][k2][k]))
     scores = []
     for method in METHODS:
         for series in series_names:
@@ -827,14 +990,18 @@ def format_backtest_table(result: dict[str, Any]) -> str:
         f"history {h['first']} .. {h['last']} ({h['n']} rows), horizons {result['horizons']} days",
     ]
     series = sorted({r["series"] for r in result["scores"]})
+    kinds = {r["series"]: r.get("kind") for r in result.get("per_origin", [])}
     for s in series:
-        lines += ["", f"series {s}  (lower WIS/CRPS is better; nominal coverage 0.50 / 0.90)"]
-        lines.append(f"{'method':<12}{'horizon':>8}{'n':>6}{'WIS':>10}{'CRPS':>10}{'cov50':>8}{'cov90':>8}")
+        level = kinds.get(s) == "concentration"
+        what = {"concentration": "; levels, censored below the lab's limit; log = -log predictive density",
+                "positivity": "; positives out of the realised tests"}.get(kinds.get(s) or "", "")  # fmt: skip
+        lines += ["", f"series {s}  (lower WIS/CRPS{'/log' if level else ''} is better; nominal coverage 0.50 / 0.90{what})"]
+        lines.append(f"{'method':<12}{'horizon':>8}{'n':>6}{'WIS':>10}{'CRPS':>10}{'cov50':>8}{'cov90':>8}" + (f"{'log':>9}" if level else ""))
         for r in result["scores"]:
             if r["series"] == s:
                 lines.append(
                     f"{r['method']:<12}{r['horizon']:>8}{r['n']:>6}{_f(r['wis']):>10}{_f(r['crps']):>10}"
-                    f"{_f(r['coverage_50']):>8}{_f(r['coverage_90']):>8}"
+                    f"{_f(r['coverage_50']):>8}{_f(r['coverage_90']):>8}" + (f"{_f(r['log_score']):>9}" if level else "")
                 )
     nowcast_series = sorted({r["series"] for r in result.get("nowcast_scores", [])})
     for s in nowcast_series:
