@@ -499,16 +499,26 @@ def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
 
 
 def cmd_demo(args) -> int:
-    summary = run_demo(Path(args.out), days=args.days, particles=args.particles, seed=args.seed, quiet=args.quiet)
+    if args.town:
+        from .demo_town import run_town_demo
+
+        summary = run_town_demo(Path(args.out or "casecloud-town"), days=args.days or 84, particles=args.particles or 1000,
+                                seed=args.seed, quiet=args.quiet)
+    else:
+        summary = run_demo(Path(args.out or "casecloud-demo"), days=args.days or 120, particles=args.particles or 2000,
+                           seed=args.seed, quiet=args.quiet)
     print(summary)
     return 0
 
 
 def add_demo_parser(sub) -> None:
     demo = sub.add_parser("demo", help="run a made-up season end to end over the file transport (no broker)")
-    demo.add_argument("--out", default="casecloud-demo", help="output directory (default: ./casecloud-demo)")
-    demo.add_argument("--days", type=int, default=120, help="days to simulate (default 120)")
-    demo.add_argument("--particles", type=int, default=2000, help="particles in the cloud (default 2000)")
+    demo.add_argument("--town", action="store_true",
+                      help="the individual-based demo instead: a season person by person in the invented town of "
+                      "Pellingwold (20,000 people; households, schools, workplaces)")
+    demo.add_argument("--out", help="output directory (default: ./casecloud-demo; with --town ./casecloud-town)")
+    demo.add_argument("--days", type=int, help="days to simulate (default 120; with --town 84)")
+    demo.add_argument("--particles", type=int, help="particles in the cloud (default 2000; with --town 1000 towns)")
     demo.add_argument("--seed", type=int, default=7, help="seed of the hidden truth (default 7)")
     demo.add_argument("--quiet", action="store_true", help="no progress lines")
     demo.set_defaults(handler=cmd_demo)

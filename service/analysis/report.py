@@ -505,7 +505,7 @@ def build_history_report(
             comps.setdefault(m.group(1), []).append(m.group(2))
     # The susceptible compartment: the source of the model's infection flow, else "S", else the first.
     susceptible = "S"
-    if model is not None:
+    if model is not None and hasattr(model.spec, "flows"):  # individual-based models publish S[band] as is
         sources = [f.source for f in model.spec.flows if f.infection]
         susceptible = sources[0] if sources else susceptible
     if susceptible not in comps and comps:
