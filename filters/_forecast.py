@@ -356,6 +356,19 @@ def _peak_block(peak: dict[str, Any], kind: str = "count") -> dict[str, Any]:
 
 
 # ----------------------------------------------------------------- simulation
+def _sum_into(out: np.ndarray, parts: list[np.ndarray]) -> None:
+    """``out[:] = sum(parts)`` for integer (n,) arrays, one add per part: the same
+    totals as a reduction over the stacked parts (integer sums are exact), without
+    a reduction loop over a short inner axis for every row."""
+    if not parts:
+        out[...] = 0
+        return
+    total = parts[0].astype(np.int64)  # as numpy sums integers (int64 accumulator)
+    for part in parts[1:]:
+        total += part
+    out[...] = total
+
+
 def _seeded(*words: int) -> np.random.Generator:
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(list(words))))
 
@@ -501,9 +514,11 @@ def forecast(
             for key, values in own(futures).items():
                 latent[key][:, h - 1] = values
         if "infections" in latent and own is None:
-            latent["infections"][:, h - 1] = futures.history[:, 0, track.slots, :].sum(axis=(1, 2))
+            today_moves = futures.history[:, 0]
+            _sum_into(latent["infections"][:, h - 1], [today_moves[:, k, g] for k in track.slots for g in range(today_moves.shape[2])])
         if track.sources:
-            latent["susceptibles"][:, h - 1] = futures.states[:, :, track.sources].sum(axis=(1, 2))
+            states = futures.states
+            _sum_into(latent["susceptibles"][:, h - 1], [states[:, g, c] for g in range(states.shape[1]) for c in track.sources])
             # R_eff at the end of day h, under the interventions in force on the day that follows.
             today = None if effects is None else effects.on_day(t1)
             latent["R_eff"][:, h - 1] = stepper.reproduction_number(futures, t1, today)

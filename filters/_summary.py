@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Summary", "weighted_quantiles", "summarise", "DEFAULT_PROBS"]
+__all__ = ["DEFAULT_PROBS", "Summary", "summarise", "weighted_quantiles"]
 
 DEFAULT_PROBS = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
 
@@ -38,21 +38,97 @@ def weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs: np.ndarra
 def _column_quantiles(columns: list[np.ndarray], weights: np.ndarray, probs: np.ndarray) -> np.ndarray:
     """(k, q) weighted quantiles of q columns of length n (integer or float).
 
-    Per column: a stable sort order, cumulative weights along it, and a binary
-    search for the first cumulative weight >= p - 1e-12. The same result as
-    comparing every cumulative weight with every probability, in O(n log n)
-    time and O(n) memory per column.
+    Per column: a stable sort order, cumulative weights along it (summed one by
+    one, in that order), and a binary search for the first cumulative weight,
+    divided by the total, that is >= p - 1e-12. The same result as comparing
+    every cumulative weight with every probability, in O(n log n) time and O(n)
+    memory per column. Long columns find the crossings from block sums instead
+    (:func:`_certified_crossings`) wherever that provably picks the same index.
     """
     targets = probs - 1e-12  # tolerate round-off in the cumulative weights
     out = np.empty((probs.size, len(columns)))
+    n = columns[0].size if columns else 0
+    if n < 4 * _BLOCK or targets.ndim != 1 or targets.size == 0:
+        for j, column in enumerate(columns):
+            order = _stable_order(column)
+            out[:, j] = column[order[_crossings(weights[order], targets)]]
+        return out
+    orders = [_stable_order(column) for column in columns]
+    blocks = -(-n // _BLOCK)
+    sorted_w = np.zeros((len(columns), blocks * _BLOCK))  # zero-padded to whole blocks
+    for j, order in enumerate(orders):
+        np.take(weights, order, out=sorted_w[j, :n])
+    idx = _certified_crossings(sorted_w.reshape(len(columns), blocks, _BLOCK), n, targets)
     for j, column in enumerate(columns):
-        order = _stable_order(column)
-        cw = np.cumsum(weights[order])
-        cw /= cw[-1]
-        idx = np.searchsorted(cw, targets, side="left")
-        np.minimum(idx, column.size - 1, out=idx)
-        out[:, j] = column[order[idx]]
+        row = idx[j] if idx is not None and idx[j, 0] >= 0 else _crossings(sorted_w[j, :n], targets)
+        out[:, j] = column[orders[j][row]]
     return out
+
+
+def _crossings(sorted_w: np.ndarray, targets: np.ndarray) -> np.ndarray:
+    """First index where the running sum of ``sorted_w`` over its total reaches each target."""
+    cw = np.cumsum(sorted_w)
+    cw /= cw[-1]
+    idx = np.searchsorted(cw, targets, side="left")
+    np.minimum(idx, sorted_w.size - 1, out=idx)
+    return idx
+
+
+_BLOCK = 64
+_UNIT = 2.0**-53  # unit round-off of float64
+
+
+def _certified_crossings(w: np.ndarray, n: int, targets: np.ndarray) -> np.ndarray | None:
+    """:func:`_crossings` of every row of ``w`` (q, blocks, B) (weights >= 0 in sorted
+    order, zero-padded after the first ``n``), found without the running sums.
+
+    Why the same index: :func:`_crossings` compares fl(c_i / c_T) with t, where
+    c_i is the one-by-one float sum of the first i + 1 weights; here a_i, the
+    same prefix sum taken as block sums plus a running sum inside one block, is
+    compared instead. For non-negative terms any order of float summation of m
+    terms is within a relative gamma_m = m u / (1 - m u) of the exact sum (u the
+    unit round-off; Higham 2002, Accuracy and Stability of Numerical Algorithms,
+    2nd ed., section 4.2), and each division adds u. So fl(c_i / c_T) lies within
+    a relative E = 8 (n + B + 8) u of fl(a_i / a_T) (twice the first-order sum of
+    those terms), and where a_j / a_T >= t (1 + E)-safely and a_(j-1) / a_T < t
+    safely, the running sums (non-decreasing) cross t exactly at j. Rows where
+    some target falls within that margin (e.g. equal weights, whose cumulative
+    sums meet p exactly) are marked -1 for the exact running sum; None when the
+    margin argument does not hold at all (negative, non-finite or tiny weights or
+    targets, where underflow would void the relative bounds).
+    """
+    q, blocks, width = w.shape
+    tiny = 1e-200
+    if not np.all((targets <= 0) | (targets >= tiny)):
+        return None
+    block_sums = w.sum(axis=2)  # (q, blocks)
+    if not block_sums.min() >= 0:
+        return None
+    ends = np.cumsum(block_sums, axis=1)
+    total = ends[:, -1:]
+    if not (np.all(np.isfinite(total)) and total.min() >= tiny and w.min() >= 0):
+        return None
+    margin = 8.0 * (n + width + 8) * _UNIT
+    ratio = ends / total
+    # The block holding each crossing: the number of block ends below the target.
+    block = np.count_nonzero(ratio[:, :, None] < targets[None, None, :], axis=1)  # (q, k)
+    np.minimum(block, blocks - 1, out=block)
+    rows = np.arange(q)[:, None]
+    before = np.where(block > 0, ends[rows, np.maximum(block - 1, 0)], 0.0)  # (q, k)
+    inside = np.cumsum(w[rows, block], axis=2)  # (q, k, B)
+    inside += before[:, :, None]
+    inside /= total[:, :, None]
+    pos = np.count_nonzero(inside < targets[None, :, None], axis=2)  # (q, k)
+    idx = block * width + pos
+    ok = (pos < width) & (idx < n)
+    pos_c = np.minimum(pos, width - 1)
+    at = np.take_along_axis(inside, pos_c[:, :, None], axis=2)[:, :, 0]
+    below = np.where(pos_c > 0, np.take_along_axis(inside, np.maximum(pos_c - 1, 0)[:, :, None], axis=2)[:, :, 0],
+                     before / total)
+    ok &= at * (1.0 - margin) >= targets[None, :]
+    ok &= (idx == 0) | (below * (1.0 + margin) < targets[None, :])
+    idx[~ok.all(axis=1)] = -1
+    return idx
 
 
 _EXACT_INT = 2**53  # integers below this convert to float64 exactly
@@ -61,9 +137,14 @@ _EXACT_INT = 2**53  # integers below this convert to float64 exactly
 def _stable_order(column: np.ndarray) -> np.ndarray:
     """``np.argsort(np.asarray(column, float), kind="stable")``, faster.
 
-    Whole-number columns (counts) are sorted as packed int64 keys
-    (value - min, index), a stable argsort by construction; other columns get
-    numpy's default sort, with tied values then put back in index order.
+    Whole-number columns (counts) with a span below 2**16 get numpy's stable
+    (radix) sort of their offsets from the minimum; wider ones are sorted as
+    packed int64 keys (value - min, index), a stable argsort by construction.
+    Finite float columns are sorted as packed keys too (their order-preserving
+    bit patterns, truncated to fit beside the index), and the order is kept
+    only if the values come out non-decreasing along it (always so unless two
+    different values share a truncated key). Anything else gets numpy's
+    default sort, with tied values then put back in index order.
     """
     n = column.size
     if n < 2:
@@ -73,6 +154,8 @@ def _stable_order(column: np.ndarray) -> np.ndarray:
     if column.dtype.kind in "iu":
         lo, hi = int(column.min()), int(column.max())
         if -_EXACT_INT < lo and hi < _EXACT_INT and hi - lo < span:
+            if hi - lo < 2**16:
+                return np.argsort((column - lo).astype(np.uint16), kind="stable")
             return _packed_order(column - lo, bits)
         column = column.astype(float)
     elif column.dtype != np.float64:
@@ -84,6 +167,9 @@ def _stable_order(column: np.ndarray) -> np.ndarray:
             shifted = column - lo
             if np.array_equal(shifted, np.floor(shifted)):
                 return _packed_order(shifted.astype(np.int64), bits)
+    order = _float_order(column, bits)
+    if order is not None:
+        return order
     order = np.argsort(column)
     ranked = column[order]
     tied = ranked[1:] == ranked[:-1]
@@ -95,6 +181,41 @@ def _stable_order(column: np.ndarray) -> np.ndarray:
         keys = np.empty(n, dtype=np.int64)
         keys[order] = rank
         order = _packed_order(keys, bits)
+    return order
+
+
+_MAGNITUDE = np.int64(0x7FFF_FFFF_FFFF_FFFF)
+
+
+def _float_key(x: np.ndarray) -> np.ndarray:
+    """int64 keys in the order of the (finite, zero-signless) float64 values ``x``:
+    the bit pattern, with the magnitude bits of negative values flipped."""
+    keys = x.view(np.int64)
+    return np.where(keys < 0, keys ^ _MAGNITUDE, keys)
+
+
+def _float_order(column: np.ndarray, bits: int) -> np.ndarray | None:
+    """Stable argsort of a finite float64 column through packed integer keys
+    (see :func:`_stable_order`); None when it does not apply (a non-finite value,
+    or two different values that share a truncated key)."""
+    lo, hi = column.min(), column.max()
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return None
+    x = column + 0.0  # -0.0 + 0.0 is +0.0: equal values get equal bit patterns
+    keys = _float_key(x) if lo < 0 else x.view(np.int64)
+    klo, khi = (int(k) for k in _float_key(np.array([lo + 0.0, hi + 0.0])))
+    shift = max(0, (khi - klo).bit_length() - (63 - bits))
+    # key - klo lies in [0, khi - klo] < 2**64: exact in wrapping uint64 arithmetic.
+    packed = keys.view(np.uint64) - np.uint64(klo % 2**64)
+    packed >>= np.uint64(shift)
+    packed <<= np.uint64(bits)
+    packed |= np.arange(x.size, dtype=np.uint64)
+    packed.sort()
+    packed &= np.uint64((1 << bits) - 1)
+    order = packed.view(np.intp) if np.dtype(np.intp).itemsize == 8 else packed.astype(np.intp)
+    ranked = x[order]
+    if not np.all(ranked[1:] >= ranked[:-1]):
+        return None
     return order
 
 
