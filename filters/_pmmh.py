@@ -88,10 +88,10 @@ class CalibrationParameter:
 
 
 def calibration_parameters(model: Any) -> list[CalibrationParameter]:
-    """The static parameters of a CompartmentalModel, in spec order."""
+    """The static parameters of a model of either family (its spec's ``static`` ones), in spec order."""
     spec = getattr(model, "spec", None)
     if spec is None:
-        raise TypeError("calibration_parameters needs a model with a spec (CompartmentalModel); pass parameters= explicitly")
+        raise TypeError("calibration_parameters needs a model with a spec (CompartmentalModel or IndividualModel); pass parameters= explicitly")
     out = []
     for j, name in enumerate(model.param_names):
         p = spec.parameters[name]
