@@ -423,6 +423,17 @@ class RecordProcessor:
                 plan.updates[name] = (float(value), as_of)
                 continue
             total, known_as_of = known
+            if float(value) == total and series.kind == "positivity":
+                # the same positives out of another number of tests are another observation
+                before, now_tests = runtime.tests.get(name, {}).get(day), (message.tests or {}).get(name)
+                if before is not None and now_tests is not None and float(now_tests) != before:
+                    raise _Reject(
+                        "not_revisable",
+                        f"series {name!r} is dated by report: {total:g} positives out of {before:g} tests were assimilated "
+                        f"for {message.period}, now {value} positives out of {now_tests} tests; a period's positives and "
+                        "tests are final on arrival",
+                        sid,
+                    )
             if float(value) == total:
                 plan.skipped.append("duplicate_period")
             elif not series.event_dated:
@@ -555,8 +566,11 @@ class RecordProcessor:
         if not result.collapsed:
             for name, entry in plan.updates.items():
                 runtime.known.setdefault(name, {})[plan.day] = entry
+                tests = (message.tests or {}).get(name)
+                if tests is not None and getattr(runtime.model.series_named(name), "kind", None) == "positivity":
+                    runtime.tests.setdefault(name, {})[plan.day] = float(tests)
         oldest = pf.time - runtime.model.window_days
-        for days in runtime.known.values():
+        for days in [*runtime.known.values(), *runtime.tests.values()]:
             for d in [d for d in days if d < oldest]:
                 del days[d]
         weights = pf.weights()

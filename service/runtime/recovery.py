@@ -445,6 +445,11 @@ def migrate_stream(
             for series, ds in cp.header.get("known", {}).items()
             if series in {x.name for x in new_model.series}
         }
+        runtime.tests = {
+            series: {int(d): float(n) for d, n in ds.items()}
+            for series, ds in cp.header.get("tests", {}).items()
+            if series in {x.name for x in new_model.series}
+        }
         runtime.operations = [*cp.header.get("operations", []), {"action": "migrate", **{k: plan[k] for k in ("from", "to")}, "at": _now()}]
         info = store.write(runtime.to_checkpoint())
         plan["written"] = str(info.path)

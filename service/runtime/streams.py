@@ -46,6 +46,8 @@ class StreamRuntime:
     positions: dict[str, int] = field(default_factory=dict)  # "topic|partition" -> last applied offset
     # series -> event day -> (total assimilated, model day it was known as of, None: final), inside the window
     known: dict[str, dict[int, tuple[float, int | None]]] = field(default_factory=dict)
+    # positivity series -> day -> the tests behind the positives assimilated, inside the window
+    tests: dict[str, dict[int, float]] = field(default_factory=dict)
     alerts: dict[str, AlertState] = field(default_factory=dict)
     saved_at: float | None = None  # when the checkpoint it was restored from was written (file time)
     # Lost-state guard: ``fresh`` until the first record shows whether the stream is new;
@@ -82,6 +84,8 @@ class StreamRuntime:
                     series: {str(day): [total, as_of] for day, (total, as_of) in sorted(days.items())}
                     for series, days in sorted(self.known.items())
                 },
+                **({"tests": {series: {str(day): n for day, n in sorted(days.items())} for series, days in sorted(self.tests.items()) if days}}
+                   if any(self.tests.values()) else {}),
             },
             arrays=arrays,
         )
@@ -163,6 +167,7 @@ class StreamRegistry:
                 series: {int(day): (float(total), None if as_of is None else int(as_of)) for day, (total, as_of) in days.items()}
                 for series, days in cp.header.get("known", {}).items()
             },
+            tests={series: {int(day): float(n) for day, n in days.items()} for series, days in cp.header.get("tests", {}).items()},
             saved_at=_file_time(loaded.path),
         )
 

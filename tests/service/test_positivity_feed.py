@@ -147,3 +147,24 @@ def test_a_past_positivity_value_is_late(tmp_path):
     assert [o.status for o in (t["outcome"] for t in run.trace)] == ["applied", "applied", "dead_letter", "applied"]
     [letter] = run.letters()
     assert letter.reason == "late" and "positivity snapshot" in letter.message
+
+
+def test_the_same_positives_out_of_other_tests_are_not_a_duplicate(tmp_path):
+    """A re-sent positivity value with the same positives but another number of tests is another
+    observation (another share positive): for a report-dated series it is a dead letter
+    ``not_revisable`` naming both test counts, and the cloud is left as it was; the same positives
+    out of the same tests are a duplicate (skipped). Bug caught: duplicates told apart by the
+    positives alone (the new share silently dropped as a duplicate)."""
+    same = msg(5, {"cases": 10, "lab_positive": 11}, {"lab_positive": 300})
+    other = msg(5, {"cases": 10, "lab_positive": 11}, {"lab_positive": 450})
+    run = Run(tmp_path / "live", [good(4), same, same, other, good(6)])
+    assert [t["outcome"].status for t in run.trace] == ["applied", "applied", "skipped", "dead_letter", "applied"]
+    [letter] = run.letters()
+    assert letter.reason == "not_revisable" and base64.b64decode(letter.original_base64) == other
+    assert "11 positives out of 300 tests" in letter.message and "11 positives out of 450 tests" in letter.message
+    assert run.trace[3]["cloud"] == run.trace[2]["cloud"] and run.trace[3]["files"] == run.trace[2]["files"]
+    # the tests behind assimilated positives survive a restart (they live in the checkpoint)
+    Run(tmp_path / "restart", [good(4), same])
+    again = Run(tmp_path / "restart", [good(4), same, other])  # the first two were applied before the restart
+    assert again.counts["applied"] == 0 and again.counts["dead_letter"] == 1
+    assert [x.reason for x in again.letters()] == ["not_revisable"]
