@@ -20,6 +20,7 @@ from ._nowcast import NowcastEntry, nowcast
 from ._nowcast_draws import nowcast_draws
 from ._chain_ladder import ChainLadder, chain_ladder, chain_ladder_draws, reporting_triangle
 from ._particles import ParticleSet
+from ._predictive import Predictive, PredictiveLaw, one_step_predictive
 from ._reports import Report, ReportingCdfTable, reporting_cdf
 from ._pmmh import (
     CalibrationParameter,
@@ -79,6 +80,9 @@ __all__ = [
     "log_likelihood_estimate",
     "mcmc_ess",
     "one_step_intervals",
+    "one_step_predictive",
+    "Predictive",
+    "PredictiveLaw",
     "split_rhat",
     "unconstrained_log_prior",
     "CompartmentalModel",

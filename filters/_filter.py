@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -11,6 +12,7 @@ import numpy as np
 from ._model import Model
 from ._observation import Observation, ObservationError
 from ._particles import ParticleSet
+from ._predictive import Predictive, one_step_predictive
 from ._reports import Report
 from ._resampling import RESAMPLERS, resample
 from ._rng import generator_state, restore_generator
@@ -60,7 +62,9 @@ class StepResult:
 
     ``log_evidence_increment`` is log p(y_t | y_1:t-1) estimated by the
     filter, or ``None`` when the step collapsed. ``ess`` is the effective
-    sample size after weighting and before any resampling.
+    sample size after weighting and before any resampling. ``predictive``
+    (when asked for): each report with the cloud's one-step-ahead predictive
+    of its value, before the step re-weighted the cloud.
     """
 
     time: int
@@ -70,6 +74,7 @@ class StepResult:
     resampled: bool
     collapsed: bool
     summary: Summary | None
+    predictive: tuple[tuple[Report, Predictive], ...] | None = None
 
 
 class ParticleFilter:
@@ -127,12 +132,18 @@ class ParticleFilter:
         self.predict(observation.time)
         return self._weigh(self.model.log_likelihood(self.particles, observation), with_summary)
 
-    def assimilate(self, time: int, reports: list[Report], with_summary: bool = True) -> StepResult:
+    def assimilate(
+        self, time: int, reports: list[Report], with_summary: bool = True, predictive: Sequence[float] | None = None
+    ) -> StepResult:
         """Move the cloud to day ``time`` (never back) and weigh it by every report at once.
 
         A report for a past day inside the model's window is judged against each
         particle's own retained path; nothing is re-simulated. The model must
-        offer ``check_report`` and ``report_log_likelihood``.
+        offer ``check_report`` and ``report_log_likelihood``. ``predictive``:
+        quantile levels of each report's one-step-ahead predictive (the moved
+        cloud with its weights before this step, :func:`one_step_predictive`;
+        each report's marginal), returned in the result when the model offers
+        ``report_law``. It draws no random numbers.
         """
         time = max(int(time), self.time)
         for report in reports:
@@ -140,10 +151,20 @@ class ParticleFilter:
                 raise ObservationError(f"report of {report.series!r} for day {report.time} is after day {time}")
             self.model.check_report(report, time)  # type: ignore[attr-defined]
         self.predict(time)
+        checks = None
+        if predictive is not None and hasattr(self.model, "report_law"):
+            weights = self.weights()
+            checks = tuple((report, self._one_step(report, weights, predictive)) for report in reports)
         loglik = np.zeros(self.particles.size)
         for report in reports:
             loglik += self.model.report_log_likelihood(self.particles, report, self.time)  # type: ignore[attr-defined]
-        return self._weigh(loglik, with_summary)
+        result = self._weigh(loglik, with_summary)
+        return result if checks is None else replace(result, predictive=checks)
+
+    def _one_step(self, report: Report, weights: np.ndarray, probs: Sequence[float]) -> Predictive:
+        law = self.model.report_law(self.particles, report, self.time)  # type: ignore[attr-defined]
+        censored = report.lod is not None and report.value < report.lod
+        return one_step_predictive(law, weights, None if censored else float(report.value), probs, report.lod)
 
     def distinct_paths(self) -> int:
         """How many distinct ancestors the cloud has at the oldest day of the window (path degeneracy)."""

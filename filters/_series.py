@@ -36,6 +36,7 @@ from ._observation import (
 )
 from ._model import ModelGuardError, first_bad
 from ._particles import ParticleSet
+from ._predictive import PredictiveLaw
 from ._reports import Report, ReportingCdfTable, reporting_cdf
 
 __all__ = ["MAX_COUNT", "ObservedSeries", "compile_series", "mask_groups"]
@@ -532,6 +533,37 @@ class ObservedSeries:
             return poisson_loglik(y, mu)
         k = self._column(particles.params, s.dispersion_param, s.dispersion)
         return _negbin_loglik(y, mu, _negbin_size_terms(k))
+
+    def report_law(self, particles: ParticleSet, report: Report, now: int) -> PredictiveLaw:
+        """Each particle's law of the total a report carries (the law its
+        :meth:`report_log_likelihood` weighs the increment by, shifted by the total
+        already known), for the one-step predictive (:func:`filters.one_step_predictive`).
+        A concentration's law is of the measured level at the sample's flow, uncensored."""
+        s = self._series_by_name[report.series]
+        self._guard_series(particles, s)
+        column = self._column
+        if s.kind == "positivity":
+            p = self._share_positive(particles, s)
+            if s.noise == "binomial":
+                return PredictiveLaw("binomial", {"trials": float(report.trials), "p": p})  # type: ignore[arg-type]
+            phi = column(particles.params, s.dispersion_param, s.dispersion)
+            return PredictiveLaw("betabinomial", {"trials": float(report.trials), "p": p, "phi": phi})  # type: ignore[arg-type]
+        if s.kind == "concentration":
+            sh = s.shedding
+            assert sh is not None
+            median = self._concentration_mean(particles, s, now - report.time, report.flow)
+            sd = column(particles.params, sh.noise_sd[1], sh.noise_sd[0])
+            if sh.df is None:
+                return PredictiveLaw("lognormal", {"median": median, "sd": sd})
+            return PredictiveLaw("studentt", {"median": median, "sd": sd, "df": sh.df})
+        if s.noise == "binomial":
+            rho = column(particles.params, s.reporting_param, s.reporting)
+            return PredictiveLaw("binomial", {"trials": self._trials(particles, s, now - report.time), "p": rho})
+        mu = self.report_mean(particles, report, now)
+        if s.noise == "poisson":
+            return PredictiveLaw("poisson", {"mean": mu}, offset=float(report.previous))
+        k = column(particles.params, s.dispersion_param, s.dispersion)
+        return PredictiveLaw("negbin", {"mean": mu, "size": k}, offset=float(report.previous))
 
     def sample_increment(
         self, particles: ParticleSet, report: Report, now: int, rng: np.random.Generator, mean: np.ndarray | None = None

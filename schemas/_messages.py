@@ -23,6 +23,7 @@ __all__ = [
     "DeadLetter",
     "SourcePosition",
     "NowcastPeriod",
+    "SeriesPredictive",
     "ForecastBlock",
     "parse_period",
     "MAX_COUNT",
@@ -184,6 +185,28 @@ class NowcastPeriod(_Message):
     share_pending: float = Field(description="expected share of the eventual count not yet reported")
 
 
+class SeriesPredictive(_Message):
+    """One value an estimate assimilated, against what the cloud expected of it just before
+    (the one-step-ahead predictive: the cloud moved to the value's day, before the value
+    re-weighted it; Dawid 1984, the prequential check)."""
+
+    period: Period
+    as_of: str | None = Field(default=None, description="the value's vintage (event-dated series); null: final")
+    observed: float | None = Field(
+        description="the value assimilated: a count or total, positives, or a concentration; null: a sample below its limit of detection"
+    )
+    tests: int | None = Field(default=None, description="positivity series: the tests behind the positives")
+    lod: float | None = Field(default=None, description="concentration series: the sample's limit of detection, if given")
+    flow: float | None = Field(default=None, description="concentration series: the sample's flow, if given (the predictive is at it)")
+    mean: float | None = Field(description="predictive mean (null where it is infinite: Student-t noise on the log scale)")
+    quantiles: dict[str, float] = Field(description="predictive quantiles of the value, at the summary levels")
+    pit: float | None = Field(
+        description="predictive probability below the observed value (counts: P(Y < y) + P(Y = y) / 2; "
+        "below the limit: half the probability of falling below it); near 0 or 1: a surprise"
+    )
+    p_below_lod: float | None = Field(default=None, description="concentration series with a limit: predictive probability below it")
+
+
 # ----------------------------------------------------------------------------- forecast block
 Number = Annotated[float | None, WithJsonSchema({"type": ["number", "null"]})]  # rounded; null where not finite
 
@@ -334,6 +357,11 @@ class EstimateMessage(_Message):
     nowcast: dict[str, list[NowcastPeriod]] | None = Field(
         default=None,
         description="per event-dated series: recent periods with what is reported so far and the eventual count expected",
+    )
+    predictive: dict[str, SeriesPredictive] | None = Field(
+        default=None,
+        description="per series assimilated in this step: the value against its one-step-ahead predictive "
+        "(absent in estimates of older versions and of models without a predictive law)",
     )
     source: SourcePosition
     caution: str = (

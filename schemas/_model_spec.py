@@ -528,11 +528,13 @@ def load_model_spec(path: str | Path) -> ModelSpec:
     return load_toml_model(ModelSpec, path)
 
 
-EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band", "seir_two_band_lab", "seir_hospital")
+EXAMPLE_MODELS = ("sir", "seir", "seirs", "seir_two_band", "seir_two_band_lab", "seir_hospital",
+                  "seir_two_band_signals")
 
 
 def example_model_path(name: str) -> Path:
-    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``, ``seir_two_band_lab``, ``seir_hospital``)."""
+    """Path of a shipped example spec (``sir``, ``seir``, ``seirs``, ``seir_two_band``, ``seir_two_band_lab``,
+    ``seir_hospital``, ``seir_two_band_signals``)."""
     if name not in EXAMPLE_MODELS:
         raise ValueError(f"no example model {name!r}; allowed: {list(EXAMPLE_MODELS)}")
     return Path(__file__).with_name("models") / f"{name}.toml"

@@ -31,6 +31,7 @@ from schemas import (
     NowcastPeriod,
     ObservationMessage,
     QuantitySummary,
+    SeriesPredictive,
     SourcePosition,
     parse_period,
 )
@@ -477,7 +478,7 @@ class RecordProcessor:
     # ------------------------------------------------------------------ apply
     async def _apply(self, runtime: StreamRuntime, message: ObservationMessage, plan: _Plan, record: Record) -> list[OutRecord]:
         started = time.perf_counter()
-        result, exceedance, latest, block, growth, nowcasts = await asyncio.to_thread(self._step, runtime, message, plan)
+        result, exceedance, latest, block, growth, nowcasts, predictive = await asyncio.to_thread(self._step, runtime, message, plan)
         self.metrics.step_seconds.labels(runtime.id).observe(time.perf_counter() - started)
         day = plan.day
         if runtime.last_day is None or day >= runtime.last_day:
@@ -526,6 +527,7 @@ class RecordProcessor:
             growth_probability=growth,
             forecast=block,
             nowcast=nowcasts,
+            predictive=predictive,
             source=SourcePosition(topic=record.topic, partition=record.partition, offset=record.offset),
         )
         key = sid.encode()
@@ -562,7 +564,8 @@ class RecordProcessor:
     def _step(self, runtime: StreamRuntime, message: ObservationMessage, plan: _Plan):
         """CPU work (runs in a worker thread): assimilate, summarise, nowcast, forecast."""
         pf, cfg = runtime.filter, runtime.config
-        result = pf.assimilate(plan.time, plan.reports)
+        result = pf.assimilate(plan.time, plan.reports, predictive=pf.config.summary_probs)
+        predictive = self._predictive(message, result)
         if not result.collapsed:
             for name, entry in plan.updates.items():
                 runtime.known.setdefault(name, {})[plan.day] = entry
@@ -593,7 +596,28 @@ class RecordProcessor:
             if cfg.publish_forecast:
                 block = fc.to_message_block()
                 growth = block.get("growth_probability")
-        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}, block, growth, nowcasts
+        return result, exceedance, {k: v for k, v in latest.items() if np.isfinite(v)}, block, growth, nowcasts, predictive
+
+    @staticmethod
+    def _predictive(message: ObservationMessage, result) -> dict[str, SeriesPredictive] | None:
+        """Each value of the step against its one-step-ahead predictive (None: the model offers none)."""
+        if not result.predictive:
+            return None
+        out = {}
+        for report, p in result.predictive:
+            out[report.series] = SeriesPredictive(
+                period=message.period,
+                as_of=message.as_of if report.as_of is not None else None,
+                observed=p.observed,
+                tests=None if report.trials is None else int(report.trials),
+                lod=report.lod,
+                flow=report.flow,
+                mean=p.mean,
+                quantiles={f"{q:g}": v for q, v in p.quantiles.items()},
+                pit=p.pit,
+                p_below_lod=p.p_below_lod,
+            )
+        return out
 
     def _nowcasts(self, runtime: StreamRuntime, weights: np.ndarray) -> dict[str, list[NowcastPeriod]] | None:
         """Reported-so-far against the eventual counts, for every event-dated series (None if it has none)."""

@@ -71,7 +71,11 @@ def test_example_spec_loads_compiles_and_runs(name):
     assert (ps.states >= 0).all()
     drawn = model.sample_observation(ps, rng)
     assert set(drawn) == {s.name for s in spec.series}
-    obs = Observation(time=8, values={k: float(v[0]) for k, v in drawn.items()})
+    values = {k: float(v[0]) for k, v in drawn.items()}
+    # A positivity series draws its share positive; its observation is positives out of tests.
+    positivity = [s.name for s in spec.series if s.kind == "positivity"]
+    values.update({k: float(model.sample_positives(ps, k, 200, rng)[0]) for k in positivity})
+    obs = Observation(time=8, values=values, trials={k: 200.0 for k in positivity})
     loglik = model.log_likelihood(ps, obs)
     assert loglik.shape == (64,) and not np.isnan(loglik).any() and np.isfinite(loglik).any()
     assert model.fingerprint() == spec.fingerprint()
