@@ -165,17 +165,36 @@ def check_spec(model, particles: int = 1000, days: int = 60, seed: int = 1) -> C
     return result
 
 
+def _on_band_scale(model, history, i: int, name: str) -> tuple[float | None, float | None]:
+    """Row ``i``'s value of ``name`` on the scale of the prior predictive draws, and the limit of
+    detection it lies below (else None): a positivity series' draws are shares positive, so its
+    positives are divided by their tests; a concentration below its limit is known only as that."""
+    value = history.values[i].get(name)
+    if value is None:
+        return None, None
+    kind = getattr(model.series_named(name), "kind", "incidence")
+    tests, limits, _ = history.details(i)
+    if kind == "positivity" and tests.get(name):
+        return value / tests[name], None
+    lod = limits.get(name)
+    if kind == "concentration" and lod is not None and value < lod:
+        return value, lod
+    return value, None
+
+
 def _conflicts(result: CheckResult, model, history, start: dt.date) -> None:
     weekly = {s.name for s in model.series if s.weekly}
-    for period, date, counts in zip(history.periods, history.dates, history.values):
+    for i, (period, date, counts) in enumerate(zip(history.periods, history.dates, history.values)):
         day = (date - start).days
-        for name, value in counts.items():
+        for name in counts:
+            value, below = _on_band_scale(model, history, i, name)
             if value is None or name not in result.series or not 1 <= day <= result.series[name].shape[0]:
                 continue
             if (name in weekly) != ("W" in period):
                 continue
             lo, hi = np.quantile(result.series[name][day - 1], BAND)
-            if not lo <= value <= hi:
+            # a sample below its limit conflicts only if the band lies wholly above the limit
+            if (lo > below) if below is not None else not lo <= value <= hi:
                 result.conflicts.append({"period": period, "series": name, "observed": value, "band": [float(lo), float(hi)]})
     if result.conflicts:
         result.flags.append(
@@ -183,7 +202,7 @@ def _conflicts(result: CheckResult, model, history, start: dt.date) -> None:
         )
 
 
-def _figure(result: CheckResult, history, start: dt.date, path: Path) -> None:
+def _figure(result: CheckResult, history, start: dt.date, path: Path, model=None) -> None:
     import matplotlib
 
     matplotlib.use("Agg")
@@ -199,7 +218,8 @@ def _figure(result: CheckResult, history, start: dt.date, path: Path) -> None:
         ax.fill_between(days, q25, q75, color="#4292c6", label="50 %")
         ax.plot(days, mid, color="#08519c", lw=1)
         if history is not None:
-            pts = [((d - start).days, c[name]) for d, c in zip(history.dates, history.values) if c.get(name) is not None]
+            pts = [((d - start).days, v) for i, d in enumerate(history.dates)
+                   if (v := _on_band_scale(model, history, i, name)[0] if model is not None else history.values[i].get(name)) is not None]  # fmt: skip
             if pts:
                 ax.plot(*zip(*pts), "k.", ms=4, label="observed")
         ax.set_title(f"{name}: prior predictive (before any data) against the history", fontsize=9)
@@ -285,7 +305,7 @@ def run_check_command(args: argparse.Namespace) -> int:
         out.mkdir(parents=True, exist_ok=True)
         (out / "check.json").write_bytes(orjson.dumps(result.summary(), option=orjson.OPT_INDENT_2) + b"\n")
         if result.series:
-            _figure(result, history, start or dt.date(2000, 1, 1), out / "prior_predictive.png")
+            _figure(result, history, start or dt.date(2000, 1, 1), out / "prior_predictive.png", model)
         print(f"wrote {out / 'check.json'}" + (f" and {out / 'prior_predictive.png'}" if result.series else ""), file=sys.stderr)
     if args.json:
         print(orjson.dumps(result.summary(), option=orjson.OPT_INDENT_2).decode())

@@ -110,3 +110,34 @@ def test_a_start_after_the_first_period_is_refused(tmp_path, capsys):
     assert main(["check", "--model", "sir", "--history", str(history), "--start", "2026-01-03"]) == 2
     assert "1 period(s) ending on or before it (first '2026-01-02')" in capsys.readouterr().err
 
+
+
+def test_positivity_and_concentration_rows_are_held_against_the_band_on_its_own_scale(tmp_path, capsys):
+    """The prior predictive of a positivity series is its share positive, so positives are divided by
+    their tests before the comparison; a sample not detected conflicts only when the whole band lies
+    above its limit. Bug caught: positives compared with shares (every day a conflict), or an 'nd'
+    taken as a measured 0. Model tests/filters/specs/sir_all_kinds.toml; days 3 (200 of 200 tests
+    positive) and 5 (not detected below a limit of 1e-6, far under any level the prior allows) are
+    the only conflicts."""
+    from pathlib import Path
+
+    spec = Path(__file__).parents[1] / "filters" / "specs" / "sir_all_kinds.toml"
+    model = CompartmentalModel(load_model_spec(spec))
+    result = check_spec(model, particles=300, days=12, seed=1)  # the command below repeats this draw
+    share = np.median(result.series["lab_pos"], axis=1)
+    rows = ["period,lab_pos,lab_pos.tests,ww,ww.lod"]
+    for d in range(1, 13):
+        positives, lod = round(float(share[d - 1]) * 200), 1e9
+        if d == 3:
+            positives = 200
+        if d == 5:
+            lod = 1e-6
+        rows.append(f"2026-01-{d + 1:02d},{positives},200,nd,{lod}")
+    history = tmp_path / "h.csv"
+    history.write_text("\n".join(rows) + "\n")
+    code = main(["check", "--model", str(spec), "--particles", "300", "--days", "12", "--seed", "1",
+                 "--history", str(history), "--start", "2026-01-01", "--json"])  # fmt: skip
+    summary = orjson.loads(capsys.readouterr().out)
+    assert code == 1
+    assert [(c["period"], c["series"]) for c in summary["prior_data_conflicts"]] == [("2026-01-04", "lab_pos"), ("2026-01-06", "ww")]
+    assert summary["prior_data_conflicts"][0]["observed"] == 1.0  # 200 of 200: the share
