@@ -170,3 +170,27 @@ def test_calibrate_refuses_a_history_column_of_the_wrong_kind(tmp_path, capsys):
     assert code == 2
     assert "line 3, column 2: '4.5' in column 'cases': series 'cases' of model 'sir_all_kinds' has kind 'incidence'" in err
     assert not (tmp_path / "fit").exists()  # nothing started
+
+
+def test_calibrate_reads_positivity_and_concentration_columns(tmp_path):
+    """The likelihood calibrate fits uses the tests, limits and values of the new columns: the same
+    positives out of other tests, or a sample read as not detected, change the estimate (same seed,
+    so the same particles). Bug caught: the extra columns dropped on the way to the observations."""
+    from filters import calibration_parameters, log_likelihood_estimate
+
+    model = CompartmentalModel(load_model_spec(SPEC))
+    params = calibration_parameters(model)
+
+    def loglik(text: str) -> float:
+        obs = history_observations(load_history(write(tmp_path, text)), START)
+        return log_likelihood_estimate(model, obs, params, np.array([0.45]), 300, np.random.default_rng(4))
+
+    base = "period,cases,lab_pos,lab_pos.tests,ww,ww.lod\n2026-02-01,3,5,100,40.0,20\n2026-02-02,4,6,100,55.0,20\n"
+    more_tests = base.replace(",5,100,", ",5,400,")
+    not_detected = base.replace("55.0,20", "nd,20")
+    values = [loglik(t) for t in (base, more_tests, not_detected)]
+    assert all(math.isfinite(v) for v in values) and len(set(values)) == 3, values
+    code = main(["calibrate", "--model", str(SPEC), "--history", str(write(tmp_path, base)), "--start", "2026-01-31",
+                 "--out", str(tmp_path / "fit"), "--iterations", "6", "--particles", "50", "--chains", "2",
+                 "--noise-repeats", "0", "--quiet"])  # fmt: skip
+    assert code == 0
