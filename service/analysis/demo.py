@@ -2,7 +2,7 @@
 
 A hidden "true" epidemic is simulated from the two-band SEIR example. Two
 invented feeds report on it into one stream, which runs the
-``seir_two_band_lab`` spec (the same epidemic model, observed by both feeds):
+``seir_two_band_signals`` spec (the same epidemic model, observed by every feed):
 
 * the ED feed: daily emergency-department visits per band (children,
   adults), final on arrival; on Sundays the children's and the adults'
@@ -10,7 +10,14 @@ invented feeds report on it into one stream, which runs the
 * the lab feed: weekly lab-confirmed positives by specimen date (ISO weeks).
   Reports of a week's specimens keep arriving for up to three weeks, so the
   lab sends each recent week's total *as of* its report day every Monday:
-  first low, then revised upward (three vintages a week).
+  first low, then revised upward (three vintages a week);
+* the lab's test positivity: on weekdays, the day's positives with the number
+  of tests run (people tested for other reasons test positive too, at a
+  background rate);
+* one wastewater site (the Millrace treatment works): samples taken on Mondays
+  and Thursdays, their gene copies per litre sent the next day with the day's
+  flow and the lab's limit of detection (early in the season some samples are
+  below it and are sent as not detected).
 
 The messages are written as an NDJSON feed, with a few mistakes slipped in,
 and streamed through the same service code the Kafka deployment uses, over
@@ -23,15 +30,17 @@ Beside the service's outputs it leaves what the other commands need:
 ``deployment.toml`` (the deployment config it ran with; relative paths, read
 from the file's own directory, so it works from any working directory),
 ``history.csv`` (the clean ED feed, final counts, in the history CSV format),
+``daily_history.csv`` (every daily feed: the ED counts, the lab's positives
+with their tests and the wastewater samples with their limit and flow),
 ``lab_history.csv`` (the lab feed's vintages: a history CSV with an
 ``as_of`` column) and a copy of the example scenario file. Its closing lines
 are the next commands (report, checkpoint show, scenario, a backtest of the
-ED history, a backtest of the lab vintages when a lab week is complete,
+daily feeds, a backtest of the lab vintages when a lab week is complete,
 calibrate), each runnable as printed from the directory the demo ran in.
 
-Why two history files: a history CSV holds one period per end date, and a
-weekly period ends on the same Sunday as that day's daily period, so the
-daily ED series and the weekly lab series cannot share one file.
+Why several history files: the lab's vintages need an ``as_of`` column; and
+``history.csv`` stays the ED feed alone, so models that observe the ED visits
+only (``seir_two_band``, ``seir_two_band_lab``) read it as they always did.
 """
 
 from __future__ import annotations
@@ -46,7 +55,7 @@ from pathlib import Path
 import numpy as np
 import orjson
 
-from filters import CompartmentalModel, reporting_cdf, simulate_season
+from filters import CompartmentalModel, delay_kernel, reporting_cdf, simulate_season
 from schemas import DeploymentConfig, example_model_path, load_model_spec
 
 from ..runtime.app import Service
@@ -58,7 +67,7 @@ __all__ = ["run_demo", "DEMO_STREAM", "CAUTION"]
 
 DEMO_STREAM = "brackenford-ed-ili"
 DEMO_START = dt.date(2025, 9, 1)
-DEMO_MODEL = "seir_two_band_lab"  # the stream's model: the two-band SEIR observed by the ED and the lab feed
+DEMO_MODEL = "seir_two_band_signals"  # the stream's model: the two-band SEIR observed by all four feeds
 TRUTH_MODEL = "seir_two_band"  # the hidden epidemic and its ED counts are simulated from the same dynamics
 CAUTION = (
     "Cautions: these are model-based estimates with stated uncertainty, for decision support only. "
@@ -69,14 +78,24 @@ CAUTION = (
 TRUE_PARAMS = {"beta": 0.20, "rho": 0.12, "k": 25.0}
 TRUE_LAB = {"rho_lab": 0.04, "lab_delay": 5.0}  # share of onsets lab-confirmed; mean days from specimen to report
 LAB_SERIES = "lab_confirmed"
+POS_SERIES, WW_SERIES = "lab_positivity", "ww_millrace"
+# The hidden truth of the two newer feeds (the filter is not told these): the background positivity among
+# people tested for other reasons, and the site's gene copies per litre per shedding-weighted infection.
+TRUE_SIGNALS = {"pos_background": 0.03, "ww_scale": 2.0}
+TESTS_PER_DAY = 320.0  # mean tests the lab runs on a weekday (it reports Monday to Friday)
+WW_WEEKDAYS = (0, 3)  # samples taken on Mondays and Thursdays, results sent the next day
+WW_LOD = 60.0  # the lab's limit of detection, copies per litre
+WW_FLOW_SD = 0.25  # day-to-day spread of the site's flow around its reference flow (log scale: rain)
 LAB_WEEKDAY = 0  # the lab sends on Mondays (Monday = 0) ...
 SPLIT_WEEKDAYS = (6,)  # ... and on Sundays each ED sends its own message
 ED_FEED, LAB_FEED = "brackenford-ed-daily", "brackenford-lab-weekly"
+POS_FEED, WW_FEED = "brackenford-lab-tests", "millrace-wastewater"
 BAND_FEEDS = {"ed_child": "brackenford-ed-children", "ed_adult": "brackenford-ed-adults"}
 
 
 CONFIG_NAME = "deployment.toml"
 HISTORY_NAME = "history.csv"
+DAILY_HISTORY_NAME = "daily_history.csv"
 LAB_HISTORY_NAME = "lab_history.csv"
 SCENARIO_EXAMPLE = "brackenford_schools"
 # The calibrate command the demo prints: a short trial (about half a minute on
@@ -201,12 +220,86 @@ def simulate_lab(lab_model: CompartmentalModel, truth, days: int, rng: np.random
     return weeks
 
 
+# ---------------------------------------------------------------- the hidden truth of the newer feeds
+@dataclass(frozen=True)
+class Signals:
+    """What the positivity feed and the wastewater site report of the hidden epidemic.
+
+    Arrays run over model days 0..days. share : the true probability that a test is
+    positive; tests, positives : the lab's daily numbers (0 tests: no report that day).
+    level : the site's true median concentration at its reference flow (copies per
+    litre). samples : (day taken, value or None when below ``WW_LOD``, flow).
+    """
+
+    share: np.ndarray
+    tests: np.ndarray
+    positives: np.ndarray
+    level: np.ndarray
+    samples: list[tuple[int, float | None, float]]
+
+
+def simulate_signals(model: CompartmentalModel, truth, days: int, rng: np.random.Generator) -> Signals:
+    """The positivity feed and the wastewater site of the stream's spec, with the true parameters.
+
+    Positivity: x(t) = I(t) / N over the district, p(t) = 1 - (1 - background) exp(-enrichment x(t))
+    (the spec's enrichment), the day's share Beta(p phi, (1 - p) phi) (the spec's dispersion phi) and
+    the positives binomial out of the day's tests (Poisson around ``TESTS_PER_DAY``, weekdays only).
+    Wastewater: new infections I(t) = S(t-1) - S(t) (everyone leaving S is infected), convolved with
+    the spec's shedding profile (``filters.delay_kernel``, as the series compiles it), times the true
+    scale and the catchment; a sample's flow is log-normal around the reference flow, its value
+    the level diluted by reference / flow times exp(sd e), e standard normal (the spec's sd), and
+    below ``WW_LOD`` it is reported as not detected.
+    """
+    spec = {s.name: s for s in model.spec.series}
+    pos, ww = spec[POS_SERIES], spec[WW_SERIES]
+    comps = list(model.compartments)
+    states = truth.states[: days + 1].astype(np.int64)
+    infected = states[:, :, comps.index(pos.compartment)].sum(axis=1)
+    x = infected / states.sum(axis=(1, 2))
+    background = TRUE_SIGNALS["pos_background"]
+    share = 1.0 - (1.0 - background) * np.exp(-float(pos.positivity.enrichment) * x)
+    weekday = np.array([(DEMO_START + dt.timedelta(days=d)).weekday() for d in range(days + 1)])
+    lab_open = (weekday < 5) & (np.arange(days + 1) >= 1)
+    tests = np.where(lab_open, rng.poisson(TESTS_PER_DAY, days + 1), 0)
+    phi = float(pos.noise.dispersion)
+    positives = rng.binomial(tests, rng.beta(share * phi, (1.0 - share) * phi))
+
+    s_ = comps.index("S")
+    infections = np.zeros(days + 1)
+    infections[1:] = (states[:-1, :, s_] - states[1:, :, s_]).sum(axis=1)
+    sh = ww.shedding
+    w = delay_kernel(sh.dist, float(sh.mean), float(sh.sd), sh.max_days)
+    level = TRUE_SIGNALS["ww_scale"] * float(ww.catchment) * np.convolve(infections, w)[: days + 1]
+    taken = np.flatnonzero(np.isin(weekday, WW_WEEKDAYS) & (np.arange(days + 1) >= 1) & (np.arange(days + 1) < days))
+    flow = float(ww.reference_flow) * np.exp(WW_FLOW_SD * rng.standard_normal(taken.size))
+    value = level[taken] * (float(ww.reference_flow) / flow) * np.exp(float(ww.noise.sd) * rng.standard_normal(taken.size))
+    samples = [(int(d), None if v < WW_LOD else round(float(v), 1), round(float(f), -3))
+               for d, v, f in zip(taken, value, flow)]
+    return Signals(share, tests, positives, level, samples)
+
+
 # ---------------------------------------------------------------- the feed
-def _history_csv(observations, series: list[str], days: int) -> str:
-    """The clean ED feed as a history CSV (``schemas.load_history``): period, then one column per series."""
-    rows = ["period," + ",".join(series)]
+def _history_csv(observations, series: list[str], days: int, signals: Signals | None = None) -> str:
+    """The clean daily feeds as a history CSV (``schemas.load_history``): period, one column per ED series
+    and, with ``signals``, the lab's positives with their tests (``<series>.tests``) on weekdays and the
+    wastewater samples on the days they were taken (``nd``: not detected, with ``.lod`` and ``.flow``)."""
+    header = ["period", *series]
+    samples = {}
+    if signals is not None:
+        header += [POS_SERIES, f"{POS_SERIES}.tests", WW_SERIES, f"{WW_SERIES}.lod", f"{WW_SERIES}.flow"]
+        samples = {d: (v, f) for d, v, f in signals.samples}
+    rows = [",".join(header)]
     for obs in observations[:days]:
-        rows.append(_period_of(obs.time) + "," + ",".join("" if obs.values.get(name) is None else str(int(obs.values[name])) for name in series))
+        cells = [_period_of(obs.time)] + ["" if obs.values.get(name) is None else str(int(obs.values[name])) for name in series]
+        if signals is not None:
+            tests = int(signals.tests[obs.time])
+            cells += [str(int(signals.positives[obs.time])), str(tests)] if tests else ["", ""]
+            if obs.time in samples:
+                value, flow = samples[obs.time]
+                cells += ["nd" if value is None else repr(value), repr(WW_LOD), repr(flow)]
+            else:
+                cells += ["", "", ""]
+        rows.append(",".join(cells))
     return "\n".join(rows) + "\n"
 
 
@@ -227,10 +320,12 @@ def _lab_history_csv(weeks: list[LabWeek], days: int, window: int) -> str:
     return "\n".join(rows) + "\n"
 
 
-def _feed_days(observations, weeks: list[LabWeek], days: int, window: int) -> list[list[bytes]]:
+def _feed_days(observations, weeks: list[LabWeek], days: int, window: int, signals: Signals | None = None) -> list[list[bytes]]:
     """Per model day 1..days, the messages that arrive that day: ED counts (one message, or one per band
-    on Sundays), then on Mondays the lab totals of the recent weeks as of that day."""
+    on Sundays), on Mondays the lab totals of the recent weeks as of that day, on weekdays the lab's
+    positives out of the day's tests, and the day after a wastewater sample its result."""
     out = []
+    sent = {d + 1: (d, v, f) for d, v, f in signals.samples} if signals is not None else {}
     for obs in observations[:days]:
         period = _period_of(obs.time)
         counts = {k: int(v) for k, v in obs.values.items()}
@@ -241,6 +336,14 @@ def _feed_days(observations, weeks: list[LabWeek], days: int, window: int) -> li
         for w, total in _lab_reports(weeks, obs.time, window):
             msgs.append({"stream": DEMO_STREAM, "period": w.period, "as_of": period, "counts": {LAB_SERIES: total},
                          "metadata": {"feed": LAB_FEED}})
+        if signals is not None and signals.tests[obs.time] > 0:
+            msgs.append({"stream": DEMO_STREAM, "period": period, "counts": {POS_SERIES: int(signals.positives[obs.time])},
+                         "tests": {POS_SERIES: int(signals.tests[obs.time])}, "metadata": {"feed": POS_FEED}})
+        if obs.time in sent:
+            taken, value, flow = sent[obs.time]
+            msgs.append({"stream": DEMO_STREAM, "period": _period_of(taken), "counts": {},
+                         "concentrations": {WW_SERIES: {"value": value, "lod": WW_LOD, "flow": flow}},
+                         "metadata": {"feed": WW_FEED}})
         out.append([orjson.dumps(m) for m in msgs])
     return out
 
@@ -285,12 +388,13 @@ def _start_afresh(out: Path) -> None:
             f.unlink(missing_ok=True)
 
 
-def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, quiet: bool = False) -> str:
+def run_demo(out: Path, days: int = 120, particles: int = 3000, seed: int = 7, quiet: bool = False) -> str:
     """Run the demo into ``out``; returns the readable summary (also written to summary.txt).
 
     Besides the service's outputs, ``out`` receives the deployment config the
     demo ran with (``deployment.toml``), the ED feed as a history CSV
-    (``history.csv``), the lab feed's vintages (``lab_history.csv``) and a
+    (``history.csv``), every daily feed (``daily_history.csv``), the lab
+    feed's vintages (``lab_history.csv``) and a
     copy of the example scenario file, so that every command listed at the
     end runs as printed on these files.
     """
@@ -303,10 +407,12 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
     truth = simulate_season(truth_model, days, np.random.default_rng(seed), params=TRUE_PARAMS)
     # The lab's own random numbers: the hidden epidemic and its ED counts do not depend on them.
     lab = simulate_lab(model, truth, days, np.random.default_rng([seed, 1]))
-    lines = _with_mistakes(_feed_days(truth.observations, lab, days, model.window_days))
+    signals = simulate_signals(model, truth, days, np.random.default_rng([seed, 2]))  # and the newer feeds' own
+    lines = _with_mistakes(_feed_days(truth.observations, lab, days, model.window_days, signals))
     (out / CONFIG_NAME).write_text(demo_config_toml(particles), encoding="utf-8")
     ed_series = [s.name for s in truth_model.series]
     (out / HISTORY_NAME).write_text(_history_csv(truth.observations, ed_series, days), encoding="utf-8")
+    (out / DAILY_HISTORY_NAME).write_text(_history_csv(truth.observations, ed_series, days, signals), encoding="utf-8")
     (out / LAB_HISTORY_NAME).write_text(_lab_history_csv(lab, days, model.window_days), encoding="utf-8")
     scenario = example_scenario_path(SCENARIO_EXAMPLE)
     (out / scenario.name).write_bytes(scenario.read_bytes())
@@ -327,7 +433,8 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
     feed = out / "observations.ndjson"
     feed.write_bytes(b"\n".join(lines[:first]) + b"\n")
     if not quiet:
-        print(f"casecloud demo: {days} days of made-up ED visits and lab reports, {particles} particles -> {out}", file=sys.stderr)
+        print(f"casecloud demo: {days} days of made-up ED visits, lab reports, test positivity and wastewater samples, "
+              f"{particles} particles -> {out}", file=sys.stderr)
     metrics = Metrics()  # one registry for both runs: the counters add up over the restart
     counts1 = asyncio.run(_run_service(config, progress, metrics))
     if not quiet:
@@ -342,7 +449,7 @@ def run_demo(out: Path, days: int = 120, particles: int = 2000, seed: int = 7, q
     reported_on = [d for d in range(1, days + 1) if _lab_reports(lab, d, model.window_days)]
     scorable = bool(reported_on) and any(w.end + max_days <= reported_on[-1] for w in lab)
     feeds = {"revisions": int(revisions), "skipped": skipped, "lab_backtest": scorable}
-    summary = summarise_demo(out, model, truth_model, truth, lab, counts1, counts2, feeds)
+    summary = summarise_demo(out, model, truth_model, truth, lab, counts1, counts2, feeds, signals)
     (out / "summary.txt").write_text(summary, encoding="utf-8")
     return summary
 
@@ -351,7 +458,8 @@ def _read(path: Path) -> list[dict]:
     return [orjson.loads(line) for line in path.read_bytes().splitlines() if line]
 
 
-def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], counts1: dict, counts2: dict, feeds: dict) -> str:
+def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], counts1: dict, counts2: dict, feeds: dict,
+                   signals: Signals | None = None) -> str:
     estimates = _read(out / "estimates.ndjson")
     alerts = _read(out / "alerts.ndjson")
     dead = _read(out / "dead_letters.ndjson")
@@ -362,6 +470,9 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
         except orjson.JSONDecodeError:
             continue
     lab_messages = [m for m in messages if LAB_SERIES in m.get("counts", {})]
+    pos_messages = [m for m in messages if POS_SERIES in m.get("counts", {})]
+    ww_messages = [m for m in messages if WW_SERIES in (m.get("concentrations") or {})]
+    not_detected = sum(1 for m in ww_messages if m["concentrations"][WW_SERIES]["value"] is None)
     split = sum(1 for m in messages if m.get("metadata", {}).get("feed") in BAND_FEEDS.values())
     # The cloud after the last record of each day it reached: what it believed at the end of that day.
     by_day: dict[int, dict] = {}
@@ -376,7 +487,8 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
         last_total[m["period"]] = m["counts"][LAB_SERIES]
     skipped = sum(feeds["skipped"].values())
     lines = [
-        "casecloud demo: Brackenford district (fictional), ED visits for influenza-like illness and lab-confirmed positives",
+        "casecloud demo: Brackenford district (fictional), ED visits for influenza-like illness, lab-confirmed positives,",
+        "test positivity and wastewater",
         "=" * 78,
         f"records: first run applied {counts1['applied']}, skipped {counts1['skipped']}, dead-lettered {counts1['dead_letter']};",
         f"         after restart applied {counts2['applied']}, skipped {counts2['skipped']}, dead-lettered {counts2['dead_letter']}",
@@ -384,7 +496,9 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
         f"skipped as already known: {skipped} ({', '.join(f'{n} {r}' for r, n in sorted(feeds['skipped'].items())) or 'none'}): "
         f"{unchanged} lab totals unchanged since the lab's previous report, {skipped - unchanged} re-sent ED message(s)",
         f"feeds: ED daily ({split} Sunday messages for one band each); lab weekly by specimen date: {len(lab_messages)} messages "
-        f"as of {len({m['as_of'] for m in lab_messages})} report days, {feeds['revisions']} revisions applied (higher totals: increments only)",
+        f"as of {len({m['as_of'] for m in lab_messages})} report days, {feeds['revisions']} revisions applied (higher totals: increments only);",
+        f"       lab positivity: {len(pos_messages)} weekdays of positives out of tests; wastewater (Millrace works): "
+        f"{len(ww_messages)} samples, {not_detected} below the limit of detection ({WW_LOD:g} copies/l)",
         "",
         "How well the cloud tracked the hidden truth (90% interval = 5%..95% posterior quantiles, at the end of each day):",
         f"{'quantity':<14}{'days covered by 90% interval':>30}{'mean |error| of median':>26}",
@@ -416,6 +530,13 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
     if "lab_delay" in lq:
         lines.append(f"lab reporting delay, mean days (learned from the revisions): truth {TRUE_LAB['lab_delay']:.1f}, "
                      f"estimate {q90('lab_delay', '.2f')}")
+    if "pos_background" in lq:
+        lines.append(f"background positivity among other tests: truth {TRUE_SIGNALS['pos_background']:.3f}, "
+                     f"estimate {q90('pos_background', '.3f')}")
+    if "ww_scale" in lq:
+        lines.append(f"wastewater scale, copies/l per shedding-weighted infection: truth {TRUE_SIGNALS['ww_scale']:.2f}, "
+                     f"estimate {q90('ww_scale', '.2f')}")
+    lines += _predictive_lines(estimates)
     lines += _nowcast_lines(last, lab)
     lines += [
         f"alerts published: {len(alerts)} ("
@@ -423,14 +544,54 @@ def summarise_demo(out: Path, model, truth_model, truth, lab: list[LabWeek], cou
         + ")",
         f"outputs in {out}/: estimates.ndjson, alerts.ndjson, dead_letters.ndjson, checkpoints/ (the service's);",
         f"  {CONFIG_NAME} (the deployment config this run used: edit it, pass it to serve, replay, scenario, checkpoint,",
-        f"  backtest), {HISTORY_NAME} (the ED feed as a history CSV, final counts), {LAB_HISTORY_NAME} (the lab feed's",
-        f"  vintages: a history CSV with an as_of column), {SCENARIO_EXAMPLE}.toml (example intervention scenarios)",
+        f"  backtest), {HISTORY_NAME} (the ED feed as a history CSV, final counts), {DAILY_HISTORY_NAME} (every daily",
+        f"  feed: ED, positives with their tests, wastewater samples), {LAB_HISTORY_NAME} (the lab feed's vintages: a",
+        f"  history CSV with an as_of column), {SCENARIO_EXAMPLE}.toml (example intervention scenarios)",
         "",
         CAUTION,
         "",
         *next_commands(out, lab_backtest=feeds.get("lab_backtest", True)),
     ]
     return "\n".join(lines) + "\n"
+
+
+def predictive_check(estimates: list[dict]) -> dict[str, dict[str, float]]:
+    """Per series, its values against their one-step-ahead predictive (the estimates' ``predictive``):
+    how many values, the share inside the central 50 % and 90 % predictive intervals and the mean
+    PIT (a calibrated cloud: about 0.5, 0.9 and 0.5); samples below the limit of detection are
+    counted apart, with the mean predictive probability of falling below it."""
+    out: dict[str, dict[str, float]] = {}
+    for e in estimates:
+        for name, p in (e.get("predictive") or {}).items():
+            row = out.setdefault(name, {"n": 0, "in50": 0, "in90": 0, "pit": 0.0, "censored": 0, "p_below": 0.0})
+            if p["observed"] is None:
+                row["censored"] += 1
+                row["p_below"] += p["p_below_lod"] or 0.0
+                continue
+            q, y = p["quantiles"], p["observed"]
+            row["n"] += 1
+            row["in50"] += q["0.25"] <= y <= q["0.75"]
+            row["in90"] += q["0.05"] <= y <= q["0.95"]
+            row["pit"] += p["pit"]
+    return out
+
+
+def _predictive_lines(estimates: list[dict]) -> list[str]:
+    check = predictive_check(estimates)
+    if not check:
+        return []
+    lines = [
+        "",
+        "Each signal against the cloud's one-step-ahead predictive (before the value re-weighted it):",
+        f"{'series':<16}{'values':>8}{'inside 50%':>13}{'inside 90%':>13}{'mean PIT':>10}  below the limit (mean P(below) predicted)",
+    ]
+    for name, r in check.items():
+        n = max(r["n"], 1)
+        censored = f"{r['censored']} ({r['p_below'] / r['censored']:.2f})" if r["censored"] else "-"
+        lines.append(f"{name:<16}{r['n']:>8}{100 * r['in50'] / n:>12.0f}%{100 * r['in90'] / n:>12.0f}%{r['pit'] / n:>10.2f}  {censored}")
+    lines.append("  (a calibrated cloud puts about 50 % and 90 % of values inside, with a mean PIT near 0.5; lab totals "
+                 "include revisions, judged by their increments)")
+    return lines
 
 
 def _nowcast_lines(last: dict, lab: list[LabWeek]) -> list[str]:
@@ -482,8 +643,9 @@ def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
         "  # what if: school closure and vaccination scenarios from the cloud as it stands, against no change",
         f"  casecloud scenario --config {config} --stream {DEMO_STREAM} --scenarios {path(SCENARIO_EXAMPLE + '.toml')} "
         f"--out {path('scenarios')}",
-        "  # how good the forecasts and alerts were: replay the ED history through the service, score against baselines",
-        f"  casecloud backtest --config {config} --history {path(HISTORY_NAME)} --stream {DEMO_STREAM} --out {path('backtest')}",
+        "  # how good the forecasts and alerts were: replay the daily feeds (ED, positivity, wastewater) through the",
+        "  # service and score them against baselines (counts, positives out of tests, censored wastewater levels)",
+        f"  casecloud backtest --config {config} --history {path(DAILY_HISTORY_NAME)} --stream {DEMO_STREAM} --out {path('backtest')}",
         *([
             "  # how good the lab nowcasts were: replay the lab feed's vintages alone, as known on each date, and score",
             "  # the nowcasts against the eventual counts beside the counts reported so far and the chain-ladder nowcast",
@@ -505,7 +667,9 @@ def cmd_demo(args) -> int:
         summary = run_town_demo(Path(args.out or "casecloud-town"), days=args.days or 84, particles=args.particles or 1000,
                                 seed=args.seed, quiet=args.quiet)
     else:
-        summary = run_demo(Path(args.out or "casecloud-demo"), days=args.days or 120, particles=args.particles or 2000,
+        # 3000 particles: with its four feeds the district's stream covered the hidden epidemic well below
+        # the nominal rate with 2000 (fewer distinct latent paths survive the more frequent re-weighting)
+        summary = run_demo(Path(args.out or "casecloud-demo"), days=args.days or 120, particles=args.particles or 3000,
                            seed=args.seed, quiet=args.quiet)
     print(summary)
     return 0
@@ -518,7 +682,7 @@ def add_demo_parser(sub) -> None:
                       "Pellingwold (20,000 people; households, schools, workplaces)")
     demo.add_argument("--out", help="output directory (default: ./casecloud-demo; with --town ./casecloud-town)")
     demo.add_argument("--days", type=int, help="days to simulate (default 120; with --town 84)")
-    demo.add_argument("--particles", type=int, help="particles in the cloud (default 2000; with --town 1000 towns)")
+    demo.add_argument("--particles", type=int, help="particles in the cloud (default 3000; with --town 1000 towns)")
     demo.add_argument("--seed", type=int, default=7, help="seed of the hidden truth (default 7)")
     demo.add_argument("--quiet", action="store_true", help="no progress lines")
     demo.set_defaults(handler=cmd_demo)

@@ -115,6 +115,8 @@ class Feed:
     # series -> date -> as-of date of the count kept ("~" for a final count): a later vintage's higher
     # total replaces an earlier one, as the service applies revisions
     vintages: dict[str, dict[dt.date, str]] = field(default_factory=dict)
+    tests: dict[str, dict[dt.date, int]] = field(default_factory=dict)  # positivity series: tests behind the count
+    levels: dict[str, dict[dt.date, float]] = field(default_factory=dict)  # concentration series: detected samples
     skipped: int = 0
     other_streams: int = 0
 
@@ -136,6 +138,11 @@ def load_observations(path: Path, stream: str) -> Feed:
             counts, vintages = feed.counts.setdefault(name, {}), feed.vintages.setdefault(name, {})
             if value is not None and vintage > vintages.get(when, "") and value >= counts.get(when, 0):
                 counts[when], vintages[when] = value, vintage
+                if (msg.tests or {}).get(name):
+                    feed.tests.setdefault(name, {})[when] = msg.tests[name]  # type: ignore[index]
+        for name, sample in (msg.concentrations or {}).items():
+            if sample is not None and sample.value is not None and (sample.lod is None or sample.value >= sample.lod):
+                feed.levels.setdefault(name, {}).setdefault(when, sample.value)
     return feed
 
 
@@ -451,7 +458,7 @@ def build_history_report(
         if x.series not in series_names:
             series_names.append(x.series)
     if feed:
-        series_names += [s for s in sorted(feed.counts) if s not in series_names]
+        series_names += [s for s in sorted({*feed.counts, *feed.levels}) if s not in series_names]
     if model is not None:
         series_names += [s.name for s in model.spec.series if s.name not in series_names]
     thresholds = {x.series: x.threshold for x in latest.exceedance.values()}
@@ -465,8 +472,11 @@ def build_history_report(
     spec_series = {s.name: s for s in model.spec.series} if model is not None else {}
     for name in series_names:
         obs = unmatched = None
-        if feed and name in feed.counts:
-            pts = sorted(feed.counts[name].items())
+        if feed and (name in feed.counts or name in feed.levels):
+            # positivity: the share positive (what its forecast is of); concentrations: detected samples
+            tests = feed.tests.get(name)
+            pts = (sorted((d, v / tests[d]) for d, v in feed.counts[name].items() if d in tests) if tests
+                   else sorted(feed.levels[name].items()) if name in feed.levels else sorted(feed.counts[name].items()))
             obs = ([d for d, _ in pts if d in applied], [v for d, v in pts if d in applied])
             unmatched = ([d for d, _ in pts if d not in applied], [v for d, v in pts if d not in applied])
         fband = fmean = None
@@ -496,6 +506,7 @@ def build_history_report(
                            first_date=dates[0])
 
     _nowcast_section(page, estimates)
+    _predictive_section(page, estimates, spec_series)
 
     # ---- compartments
     comps: dict[str, list[str]] = {}
@@ -672,6 +683,65 @@ def _nowcast_section(page: _Page, estimates: Sequence[EstimateMessage]) -> None:
                                  "50 % interval", "90 % interval"), rows))
         else:
             parts.append(f'<p class="note">No period of {_esc(name)} is still being reported in the latest estimate.</p>')
+
+
+def _predictive_kind(name: str, spec_series: dict[str, Any], entries: Sequence[Any]) -> str:
+    """'share' (positivity), 'level' (concentration) or 'count': from the spec when known, else from the values."""
+    s = spec_series.get(name)
+    if s is not None:
+        return {"positivity": "share", "concentration": "level"}.get(s.kind, "count")
+    if any(p.tests is not None for p in entries):
+        return "share"
+    if any(p.lod is not None or p.flow is not None or p.p_below_lod is not None for p in entries):
+        return "level"
+    return "count"
+
+
+def _predictive_section(page: _Page, estimates: Sequence[EstimateMessage], spec_series: dict[str, Any]) -> None:
+    """Each observed signal against its one-step-ahead predictive (omitted when the estimates carry none)."""
+    from . import report_figures as rf
+
+    entries: dict[str, list[Any]] = {}
+    for e in estimates:
+        for name, p in (e.predictive or {}).items():
+            entries.setdefault(name, []).append(p)
+    if not entries:
+        return
+    parts = page.section("predictive", "Each signal against its one-step-ahead predictive")
+    parts.append(
+        '<p class="note">Before each value re-weighted the cloud, the cloud (moved to the value\'s day) said what it '
+        "expected of it: the one-step-ahead predictive, observation noise included. A calibrated cloud puts about "
+        "half the values inside the 50 % interval and nine in ten inside the 90 % interval, and the probability "
+        "integral transform (PIT: the predictive probability below the value) averages about 0.5; PITs near 0 or 1 "
+        "are surprises (the prequential check, Dawid 1984). Lab totals that rise as reports arrive are judged by "
+        "each report's increment, and drawn at the date they are known as of.</p>"
+    )
+    panels, rows = [], []
+    units = {"count": "count per period", "share": "share of tests positive", "level": "concentration (log scale)"}
+    for name, ps in entries.items():
+        kind = _predictive_kind(name, spec_series, ps)
+        scale = [float(p.tests) if kind == "share" and p.tests else 1.0 for p in ps]
+        dates = [dt.date.fromisoformat(p.as_of) if p.as_of else parse_period(p.period) for p in ps]
+        observed = [np.nan if p.observed is None else p.observed / k for p, k in zip(ps, scale)]
+        q = {lv: [p.quantiles.get(lv, np.nan) / k for p, k in zip(ps, scale)] for lv in ("0.05", "0.25", "0.5", "0.75", "0.95")}
+        lods = [np.nan if p.lod is None else p.lod for p in ps]
+        panels.append(rf.PredictivePanel(name, kind, dates, observed, q, lods, units[kind]))
+        seen = [(p, k) for p, k in zip(ps, scale) if p.observed is not None]
+        n = len(seen)
+        in50 = sum(p.quantiles["0.25"] <= p.observed <= p.quantiles["0.75"] for p, _ in seen)
+        in90 = sum(p.quantiles["0.05"] <= p.observed <= p.quantiles["0.95"] for p, _ in seen)
+        pits = [p.pit for p, _ in seen if p.pit is not None]
+        below = len(ps) - n
+        rows.append((name, {"count": "counts", "share": "positives out of tests", "level": "concentration"}[kind], n,
+                     f"{100 * in50 / n:.0f} %" if n else "–", f"{100 * in90 / n:.0f} %" if n else "–",
+                     f"{np.mean(pits):.2f}" if pits else "–", below if kind == "level" else "–"))
+    path = page.figure(parts, "predictive.png", "each observed signal against its one-step-ahead predictive",
+                       "One panel per signal (" + ", ".join(f"<b>{_esc(n)}</b>" for n in entries) + "): dots are the "
+                       "values (red: outside the 90 % interval), bars the one-step-ahead predictive (thin: 90 %, thick: "
+                       "50 %, tick: median). Positivity as the share of tests positive; concentrations on a log axis, "
+                       "samples below the laboratory's limit of detection as open triangles at the limit.")
+    rf.predictive_figure(path, panels)
+    parts.append(_table(("series", "evidence", "values", "inside 50 %", "inside 90 %", "mean PIT", "below the limit"), rows))
 
 
 def _backtest_section(page: _Page, bt: dict[str, Any]) -> None:

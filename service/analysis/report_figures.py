@@ -38,6 +38,8 @@ __all__ = [
     "roc_figure",
     "NowcastBar",
     "nowcast_figure",
+    "PredictivePanel",
+    "predictive_figure",
 ]
 
 POSTERIOR = "#1f5f8b"
@@ -453,4 +455,55 @@ def nowcast_figure(
         _nowcast_panel(ax, bars, later_label, annotate)
         ax.set_title(f"{series}: {title}", fontsize=10, loc="left")
         ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.005, 1.0), frameon=False)
+    _save(fig, path)
+
+
+class PredictivePanel:
+    """One series' values against their one-step-ahead predictive (``EstimateMessage.predictive``).
+
+    kind : 'count', 'share' (positives / tests) or 'level' (a concentration: log axis).
+    dates : where each value sits; observed : the values (NaN: below the limit of detection);
+    q : level ('0.05', '0.25', '0.5', '0.75', '0.95') -> array of predictive quantiles, in the
+    panel's units; lods : the limit of each value (NaN where none).
+    """
+
+    def __init__(self, name: str, kind: str, dates: Sequence[dt.date], observed, q: dict[str, Sequence[float]], lods,
+                 ylabel: str) -> None:
+        self.name, self.kind, self.dates, self.ylabel = name, kind, list(dates), ylabel
+        self.observed = np.asarray(observed, dtype=float)
+        self.q = {k: np.asarray(q[k], dtype=float) for k in ("0.05", "0.25", "0.5", "0.75", "0.95")}
+        self.lods = np.asarray(lods, dtype=float)
+
+
+def predictive_figure(path: Path, panels: Sequence[PredictivePanel]) -> None:
+    """Each observed signal against the cloud's predictive of it just before it was assimilated:
+    one panel per series (shared dates), 90 % (thin) and 50 % (thick) predictive intervals and the
+    median, the value as a dot (red: outside the 90 % interval); concentrations on a log axis with
+    samples below the limit of detection drawn as open triangles at the limit."""
+    fig, axes = _new(len(panels), 1, row_height=2.5)
+    for ax, p in zip(axes[:, 0], panels):
+        x = np.array(p.dates, dtype="datetime64[D]").astype("O") if p.dates else []
+        ax.vlines(x, p.q["0.05"], p.q["0.95"], color=POSTERIOR, linewidth=1.2, alpha=0.55, label="one-step predictive: 90 %")
+        ax.vlines(x, p.q["0.25"], p.q["0.75"], color=POSTERIOR, linewidth=4.0, alpha=0.55, label="50 %")
+        ax.plot(x, p.q["0.5"], "_", color=POSTERIOR, markersize=7, label="median")
+        seen = ~np.isnan(p.observed)
+        outside = seen & ((p.observed < p.q["0.05"]) | (p.observed > p.q["0.95"]))
+        inside = seen & ~outside
+        ax.plot([d for d, k in zip(x, inside) if k], p.observed[inside], "o", color=OBSERVED, markersize=3.0,
+                label="observed")
+        if outside.any():
+            ax.plot([d for d, k in zip(x, outside) if k], p.observed[outside], "o", color=DANGER, markersize=3.6,
+                    label="observed, outside the 90 % interval")
+        below = ~seen & ~np.isnan(p.lods)
+        if below.any():
+            ax.plot([d for d, k in zip(x, below) if k], p.lods[below], "v", markerfacecolor="none", color=OBSERVED,
+                    markersize=6, label="below the limit of detection (drawn at the limit)")
+        if p.kind == "level":
+            ax.set_yscale("log")
+        else:
+            ax.set_ylim(bottom=0)
+        ax.set_title(p.name, fontsize=10, loc="left")
+        ax.set_ylabel(p.ylabel, fontsize=9)
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.005, 1.0), frameon=False)
+        _dates_axis(ax)
     _save(fig, path)

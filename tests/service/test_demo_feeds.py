@@ -1,5 +1,7 @@
-"""The demo's stream is fed as real feeds arrive: two ED feeds on some days, and lab totals by
-specimen date revised upward as reports come in; its estimates carry nowcasts of the lab weeks.
+"""The demo's stream is fed as real feeds arrive: two ED feeds on some days, lab totals by
+specimen date revised upward as reports come in, the lab's positives out of tests on weekdays and
+a wastewater site's samples; its estimates carry nowcasts of the lab weeks and, for every value,
+its one-step-ahead predictive.
 
 One demo run (40 days, 300 particles, as in test_file_transport.py), read back from its files:
 the feed it wrote, the estimates the service published and the summary it printed. The hidden
@@ -16,17 +18,26 @@ import numpy as np
 import orjson
 import pytest
 
+from scipy import stats
+
 from filters import CompartmentalModel, reporting_cdf, simulate_season
-from schemas import example_model_path, load_model_spec, parse_period
+from schemas import EstimateMessage, example_model_path, load_model_spec, parse_period
 from service import cli
 from service.analysis.demo import (
     DEMO_MODEL,
     LAB_SERIES,
+    POS_SERIES,
     TRUE_LAB,
     TRUE_PARAMS,
+    TRUE_SIGNALS,
     TRUTH_MODEL,
+    WW_LOD,
+    WW_SERIES,
+    WW_WEEKDAYS,
     _lab_reports,
+    predictive_check,
     simulate_lab,
+    simulate_signals,
 )
 
 DAYS = 40
@@ -171,3 +182,100 @@ def test_a_short_demo_does_not_offer_a_lab_backtest_it_cannot_score(tmp_path, ca
     printed = capsys.readouterr().out
     assert "lab_history.csv --stream" not in printed and "casecloud backtest " in printed
     assert (tmp_path / "lab_history.csv").read_text().count("\n") > 1  # the vintages are still written
+
+
+# ---------------------------------------------------------------- the newer feeds: positivity and wastewater
+def _series_of(message: dict) -> set[str]:
+    values = {k for k, v in message["counts"].items() if v is not None}
+    return values | {k for k, v in (message.get("concentrations") or {}).items() if v is not None}
+
+
+def test_the_feed_holds_positivity_and_wastewater_messages(demo):
+    pos = [m for m in demo["messages"] if POS_SERIES in m["counts"]]
+    ww = [m for m in demo["messages"] if WW_SERIES in (m.get("concentrations") or {})]
+    # Bug caught: the newer feeds missing, positives without their tests, or mixed into another feed's message.
+    assert len(pos) >= 20 and all(set(m["counts"]) == {POS_SERIES} and m["tests"][POS_SERIES] >= m["counts"][POS_SERIES]
+                                  for m in pos)
+    assert all(dt.date.fromisoformat(m["period"]).weekday() < 5 for m in pos)  # the lab reports on weekdays
+    assert len(ww) >= 8 and all(m["counts"] == {} for m in ww)
+    samples = [m["concentrations"][WW_SERIES] for m in ww]
+    assert all(s["lod"] == WW_LOD and s["flow"] > 0 for s in samples)
+    assert all(s["value"] is None or s["value"] >= WW_LOD for s in samples)
+    assert any(s["value"] is None for s in samples) and any(s["value"] is not None for s in samples)
+
+
+def test_each_estimate_carries_the_predictive_of_the_values_it_assimilated(demo):
+    lines = (demo["out"] / "observations.ndjson").read_bytes().splitlines()
+    seen_before: set[tuple[str, str]] = set()
+    checked = 0
+    for e in demo["estimates"]:
+        message = orjson.loads(lines[e["source"]["offset"]])
+        series = _series_of(message)
+        predictive = e["predictive"]
+        assert predictive is not None and set(predictive) <= series
+        fresh = {s for s in series if (s, message["period"]) not in seen_before}
+        # Bug caught: a series assimilated without its check, or a check for a value the step did not take.
+        assert fresh <= set(predictive)
+        seen_before |= {(s, message["period"]) for s in series}
+        for name, p in predictive.items():
+            assert p["period"] == message["period"] and set(p["quantiles"]) == set(e["quantities"]["R_eff"]["quantiles"])
+            q = [p["quantiles"][k] for k in sorted(p["quantiles"], key=float)]
+            assert q == sorted(q) and 0 <= p["pit"] <= 1
+            if name == POS_SERIES:
+                assert (p["observed"], p["tests"]) == (message["counts"][name], message["tests"][name])
+                assert q[-1] <= p["tests"]
+            elif name == WW_SERIES:
+                sample = message["concentrations"][name]
+                assert (p["observed"], p["lod"], p["flow"]) == (sample["value"], sample["lod"], sample["flow"])
+                assert 0 < p["p_below_lod"] < 1
+            else:
+                assert p["observed"] == message["counts"][name]
+            checked += 1
+    assert checked > len(demo["estimates"])  # ED days carry two series
+    # Estimates of earlier versions (no predictive) still validate: the field is optional.
+    old = {k: v for k, v in demo["estimates"][-1].items() if k != "predictive"}
+    assert EstimateMessage.model_validate(old).predictive is None
+
+
+def test_the_summary_reports_the_predictive_check_the_estimates_hold(demo):
+    check = predictive_check(demo["estimates"])
+    rows = {}
+    for line in demo["summary"].splitlines():
+        cells = line.split()
+        if cells and cells[0] in check:
+            rows[cells[0]] = cells
+    # Bug caught: figures in the summary that are not those of the published estimates.
+    assert set(rows) == set(check) >= {"ed_child", "ed_adult", POS_SERIES, WW_SERIES, LAB_SERIES}
+    for name, r in check.items():
+        n = max(r["n"], 1)
+        assert rows[name][1:5] == [str(r["n"]), f"{100 * r['in50'] / n:.0f}%", f"{100 * r['in90'] / n:.0f}%",
+                                   f"{r['pit'] / n:.2f}"]
+
+
+def test_hidden_positivity_and_wastewater_follow_the_epidemic():
+    truth_model = CompartmentalModel(load_model_spec(example_model_path(TRUTH_MODEL)))
+    model = CompartmentalModel(load_model_spec(example_model_path(DEMO_MODEL)))
+    truth = simulate_season(truth_model, 120, np.random.default_rng(7), params=TRUE_PARAMS)
+    sig = simulate_signals(model, truth, 120, np.random.default_rng([7, 2]))
+    start = dt.date(2025, 9, 1)
+    weekday = np.array([(start + dt.timedelta(days=d)).weekday() for d in range(121)])
+    assert np.all(sig.tests[weekday >= 5] == 0) and np.all(sig.tests[1:][weekday[1:] < 5] > 0)
+    assert np.all(sig.positives <= sig.tests)
+    # Positives over tests against the true share: beta-binomial with phi = 200 around p; over the
+    # ~86 report days the pooled share's sd is about sqrt(p (1 - p) / 200 / 86) ~ 0.003 (p ~ 0.1);
+    # the tolerance is about 4 sd.
+    assert sig.positives.sum() / sig.tests.sum() == pytest.approx((sig.share * sig.tests).sum() / sig.tests.sum(), abs=0.012)
+    # The level is the true scale times the catchment times new infections convolved with the
+    # shedding profile: rebuilt here with scipy's gamma (mean 6, sd 3 days, rounded to whole days,
+    # truncated at 20 and renormalised) and numpy.convolve.
+    s = truth.states.astype(np.int64)[:, :, 0].sum(axis=1)
+    infections = np.concatenate([[0.0], s[:-1] - s[1:]])
+    edges = np.concatenate([[0.0], np.arange(21) + 0.5])
+    w = np.diff(stats.gamma.cdf(edges, (6.0 / 3.0) ** 2, scale=9.0 / 6.0))
+    w /= w.sum()
+    expected = TRUE_SIGNALS["ww_scale"] * 0.6 * np.convolve(infections, w)[:121]
+    assert sig.level == pytest.approx(expected, rel=1e-9)
+    days = [d for d, _, _ in sig.samples]
+    assert {weekday[d] for d in days} == set(WW_WEEKDAYS)
+    below = [v is None for _, v, _ in sig.samples]
+    assert any(below[:6]) and not any(below[-10:])  # early samples below the limit, the peak well above it

@@ -26,6 +26,8 @@ import pytest
 from schemas import example_model_path, example_scenario_path, load_deployment_config, load_history, load_model_spec
 from service.analysis.demo import (
     CONFIG_NAME,
+    DAILY_HISTORY_NAME,
+    DEMO_MODEL,
     DEMO_STREAM,
     HISTORY_NAME,
     LAB_HISTORY_NAME,
@@ -148,6 +150,36 @@ def test_history_csv_is_the_clean_ed_feed(demo):
     # count), a Sunday holding one band only, or series in a different order from the header.
     assert history.periods == sorted(feed) and len(history) == 40
     assert [dict(v) for v in history.values] == [{k: feed[p][k] for k in ("ed_child", "ed_adult")} for p in history.periods]
+
+
+def test_daily_history_csv_holds_every_daily_feed(demo):
+    out = demo["out"]
+    spec = load_model_spec(example_model_path(DEMO_MODEL))
+    history = load_history(out / DAILY_HISTORY_NAME, allowed_series=[s.name for s in spec.series])
+    feed: dict[str, dict] = {}
+    for message in _feed(out):
+        if LAB_SERIES in message["counts"]:
+            continue
+        row = feed.setdefault(message["period"], {})
+        row.update({k: (v, (message.get("tests") or {}).get(k)) for k, v in message["counts"].items()})
+        for k, c in (message.get("concentrations") or {}).items():
+            row[k] = (c["value"], c["lod"], c["flow"])
+    assert history.series == ["ed_child", "ed_adult", "lab_positivity", "ww_millrace"] and len(history) == 40
+    # Bug caught: positives without their tests, a wastewater sample on the day it was sent rather than
+    # taken, a sample not detected read as 0 without its limit, or the ED columns differing from history.csv.
+    for i, (period, values) in enumerate(zip(history.periods, history.values)):
+        sent = feed[period]
+        tests, limits, flows = history.details(i)
+        assert {k: values[k] for k in ("ed_child", "ed_adult")} == {k: sent[k][0] for k in ("ed_child", "ed_adult")}
+        if "lab_positivity" in sent:
+            assert (values["lab_positivity"], tests["lab_positivity"]) == sent["lab_positivity"]
+        else:
+            assert values["lab_positivity"] is None
+        if "ww_millrace" in sent:
+            value, lod, flow = sent["ww_millrace"]
+            assert (values["ww_millrace"], limits["ww_millrace"], flows["ww_millrace"]) == (value or 0.0, lod, flow)
+        else:
+            assert values["ww_millrace"] is None
 
 
 def test_lab_history_csv_holds_the_lab_feeds_vintages(demo):

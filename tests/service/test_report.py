@@ -132,6 +132,7 @@ def test_report_writes_page_and_real_figures(report):
     sources = _img_sources(page)
     expected = {
         "series_ed_child.png", "series_ed_adult.png", "series_lab_confirmed.png", "nowcast_lab_confirmed.png",
+        "series_lab_positivity.png", "series_ww_millrace.png", "predictive.png",
         "susceptibles.png", "compartments.png", "r_eff.png", "parameters.png", "ess.png", "exceedance_child_ed_surge.png",
         "backtest_wis.png", "backtest_coverage.png", "backtest_roc.png",
     }
@@ -156,7 +157,7 @@ def test_page_states_facts_cautions_and_window(report, demo):
     ):
         assert phrase in page
     assert page.index('class="caution"') < page.index("<h2>")  # the cautions come before any section
-    assert last["model"] == "seir_two_band_lab" and "seir_two_band_lab" in page
+    assert last["model"] == "seir_two_band_signals" and "seir_two_band_signals" in page
     assert last["model_fingerprint"] in page
     assert STREAM in page
     assert f"{first['period']} to {last['period']}" in page
@@ -175,6 +176,58 @@ def test_page_states_facts_cautions_and_window(report, demo):
     assert not re.search(r'(src|href)="(https?:|//)', page)
     today = dt.date.today().isoformat()
     assert today not in page or today in (demo / "estimates.ndjson").read_text()
+
+
+def _predictive_rows(page: str) -> dict[str, list[str]]:
+    section = page[page.index('id="predictive"'):]
+    section = section[: section.index("</table>")]
+    rows = {}
+    for row in re.findall(r"<tr>(.*?)</tr>", section, flags=re.S):
+        cells = re.findall(r"<td>(.*?)</td>", row)
+        if cells:
+            rows[cells[0]] = cells
+    return rows
+
+
+def test_each_signal_is_drawn_against_its_one_step_predictive(report, demo):
+    page = (report / "index.html").read_text(encoding="utf-8")
+    estimates = _estimates(demo)
+    assert 'id="predictive"' in page and '<img src="predictive.png"' in page
+    rows = _predictive_rows(page)
+    # Every signal the stream assimilated is named on the page, with what kind of evidence it is.
+    assert set(rows) == {"ed_child", "ed_adult", "lab_confirmed", "lab_positivity", "ww_millrace"}
+    assert rows["lab_positivity"][1] == "positives out of tests" and rows["ww_millrace"][1] == "concentration"
+    assert rows["ed_child"][1] == "counts"
+    for name in rows:
+        assert f"<b>{name}</b>" in page[page.index('id="predictive"'):]  # the figure's caption names each panel
+    # The table's figures are those of the estimates (recounted here). Bug caught: the share of
+    # values inside an interval taken from the posterior of the state, or censored samples counted
+    # as values.
+    for name, cells in rows.items():
+        entries = [e["predictive"][name] for e in estimates if name in (e.get("predictive") or {})]
+        seen = [p for p in entries if p["observed"] is not None]
+        inside = sum(p["quantiles"]["0.05"] <= p["observed"] <= p["quantiles"]["0.95"] for p in seen)
+        assert cells[2] == str(len(seen)) and cells[4] == f"{100 * inside / len(seen):.0f} %"
+        assert cells[5] == f"{np.mean([p['pit'] for p in seen]):.2f}"
+        if name == "ww_millrace":
+            assert cells[6] == str(len(entries) - len(seen)) and len(entries) > len(seen)  # samples below the limit
+    check_png(report / "predictive.png")
+
+
+def test_predictive_figure_draws_shares_and_censored_levels(tmp_path):
+    # One panel of each kind from invented values: a share positive, and a concentration series with a
+    # sample below the limit on a log axis. The PNG must be a real picture, the axis logarithmic.
+    from service.analysis import report_figures as rf
+
+    days = [dt.date(2025, 10, 1) + dt.timedelta(days=k) for k in range(4)]
+    q = {"0.05": [0.05, 0.06, 0.07, 0.08], "0.25": [0.07, 0.08, 0.09, 0.1], "0.5": [0.08, 0.09, 0.1, 0.11],
+         "0.75": [0.09, 0.1, 0.11, 0.12], "0.95": [0.11, 0.12, 0.13, 0.14]}
+    share = rf.PredictivePanel("lab_positivity", "share", days, [0.07, 0.2, 0.1, 0.12], q, [np.nan] * 4, "share")
+    level_q = {k: [v * 1000 for v in vs] for k, vs in q.items()}
+    level = rf.PredictivePanel("ww_millrace", "level", days, [np.nan, 90.0, 100.0, 115.0], level_q, [60.0] + [np.nan] * 3, "level")
+    path = tmp_path / "p.png"
+    rf.predictive_figure(path, [share, level])
+    check_png(path)
 
 
 def test_same_inputs_elsewhere_give_the_same_page(report, demo, tmp_path):
