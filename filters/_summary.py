@@ -53,15 +53,74 @@ def _column_quantiles(columns: list[np.ndarray], weights: np.ndarray, probs: np.
             order = _stable_order(column)
             out[:, j] = column[order[_crossings(weights[order], targets)]]
         return out
-    orders = [_stable_order(column) for column in columns]
+    orders = _stable_orders(columns)
     blocks = -(-n // _BLOCK)
     sorted_w = np.zeros((len(columns), blocks * _BLOCK))  # zero-padded to whole blocks
-    for j, order in enumerate(orders):
-        np.take(weights, order, out=sorted_w[j, :n])
+    sorted_w[:, :n] = weights[orders]
     idx = _certified_crossings(sorted_w.reshape(len(columns), blocks, _BLOCK), n, targets)
     for j, column in enumerate(columns):
         row = idx[j] if idx is not None and idx[j, 0] >= 0 else _crossings(sorted_w[j, :n], targets)
         out[:, j] = column[orders[j][row]]
+    return out
+
+
+def _stable_orders(columns: list[np.ndarray]) -> np.ndarray:
+    """(q, n) :func:`_stable_order` of q columns of length n >= 2, the common
+    kinds sorted together: narrow whole-number columns as int32 keys and finite
+    float64 columns as packed keys, each in one 2-D sort (one call for all
+    columns instead of one per column; the same keys, so the same orders)."""
+    q, n = len(columns), columns[0].size
+    out = np.empty((q, n), dtype=np.intp)
+    bits = max(int(n - 1).bit_length(), 1)
+    ints, floats, rest = [], [], []
+    for j, column in enumerate(columns):
+        kind, size = column.dtype.kind, column.dtype.itemsize
+        if kind == "i" or (kind == "u" and size < 8):
+            ints.append(j)
+        elif column.dtype == np.float64 and not np.array_equal(column[:16], np.floor(column[:16])):
+            floats.append(j)  # (whole-number floats keep their own path)
+        else:
+            rest.append(j)
+    if ints:
+        keys = np.stack([columns[j].astype(np.int64, copy=False) for j in ints])
+        lo, hi = keys.min(axis=1), keys.max(axis=1)
+        fits = np.array([-_EXACT_INT < int(a) and int(b) < _EXACT_INT and int(b) - int(a) < 2 ** (31 - bits)
+                         for a, b in zip(lo, hi)])
+        rest += [j for j, ok in zip(ints, fits) if not ok]
+        if fits.any():
+            rows = [j for j, ok in zip(ints, fits) if ok]
+            narrow = (keys[fits] - lo[fits, None]).astype(np.int32)
+            narrow <<= bits
+            narrow |= np.arange(n, dtype=np.int32)
+            narrow.sort(axis=1)
+            narrow &= (1 << bits) - 1
+            out[rows] = narrow
+    if floats:
+        x = np.stack([columns[j] for j in floats])
+        x += 0.0  # -0.0 + 0.0 is +0.0: equal values get equal bit patterns
+        lo, hi = x.min(axis=1), x.max(axis=1)
+        finite = np.isfinite(lo) & np.isfinite(hi)
+        rest += [j for j, ok in zip(floats, finite) if not ok]
+        if finite.any():
+            rows = [j for j, ok in zip(floats, finite) if ok]
+            x = x[finite]
+            keys = _float_key(x) if lo[finite].min() < 0 else x.view(np.int64)
+            ends = _float_key(np.stack([lo[finite] + 0.0, hi[finite] + 0.0], axis=1))
+            klo = np.array([int(a) % 2**64 for a in ends[:, 0]], dtype=np.uint64)
+            shift = np.array([max(0, (int(b) - int(a)).bit_length() - (63 - bits)) for a, b in ends], dtype=np.uint64)
+            # key - klo lies in [0, khi - klo] < 2**64: exact in wrapping uint64 arithmetic.
+            packed = keys.view(np.uint64) - klo[:, None]
+            packed >>= shift[:, None]
+            packed <<= np.uint64(bits)
+            packed |= np.arange(n, dtype=np.uint64)
+            packed.sort(axis=1)
+            packed &= np.uint64((1 << bits) - 1)
+            order = packed.view(np.intp) if np.dtype(np.intp).itemsize == 8 else packed.astype(np.intp)
+            monotone = [bool(np.all(r[1:] >= r[:-1])) for r in (row[o] for row, o in zip(x, order))]
+            out[[j for j, ok in zip(rows, monotone) if ok]] = order[np.array(monotone, dtype=bool)]
+            rest += [j for j, ok in zip(rows, monotone) if not ok]
+    for j in rest:
+        out[j] = _stable_order(columns[j])
     return out
 
 
@@ -110,8 +169,9 @@ def _certified_crossings(w: np.ndarray, n: int, targets: np.ndarray) -> np.ndarr
         return None
     margin = 8.0 * (n + width + 8) * _UNIT
     ratio = ends / total
-    # The block holding each crossing: the number of block ends below the target.
-    block = np.count_nonzero(ratio[:, :, None] < targets[None, None, :], axis=1)  # (q, k)
+    # The block holding each crossing: the number of block ends below the target
+    # (ratio is non-decreasing along a row).
+    block = np.stack([np.searchsorted(row, targets, side="left") for row in ratio])  # (q, k)
     np.minimum(block, blocks - 1, out=block)
     rows = np.arange(q)[:, None]
     before = np.where(block > 0, ends[rows, np.maximum(block - 1, 0)], 0.0)  # (q, k)
@@ -122,9 +182,9 @@ def _certified_crossings(w: np.ndarray, n: int, targets: np.ndarray) -> np.ndarr
     idx = block * width + pos
     ok = (pos < width) & (idx < n)
     pos_c = np.minimum(pos, width - 1)
-    at = np.take_along_axis(inside, pos_c[:, :, None], axis=2)[:, :, 0]
-    below = np.where(pos_c > 0, np.take_along_axis(inside, np.maximum(pos_c - 1, 0)[:, :, None], axis=2)[:, :, 0],
-                     before / total)
+    cols = np.arange(targets.size)[None, :]
+    at = inside[rows, cols, pos_c]
+    below = np.where(pos_c > 0, inside[rows, cols, np.maximum(pos_c - 1, 0)], before / total)
     ok &= at * (1.0 - margin) >= targets[None, :]
     ok &= (idx == 0) | (below * (1.0 + margin) < targets[None, :])
     idx[~ok.all(axis=1)] = -1

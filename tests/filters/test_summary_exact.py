@@ -25,6 +25,7 @@ from filters._summary import (
     _column_quantiles,
     _float_order,
     _stable_order,
+    _stable_orders,
 )
 
 PROBS = np.array([0.01, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 0.99])
@@ -41,6 +42,9 @@ def plain_quantiles(column: np.ndarray, weights: np.ndarray, probs: np.ndarray) 
 def columns_of_every_kind(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
     return {
         "narrow counts": rng.integers(1000, 3000, n),
+        # Narrow but far from zero: v << bits wraps around 2**31 inside the range unless
+        # the minimum is taken off first (bits: the index bits packed beside the value).
+        "narrow counts far from zero": rng.integers(-100, 100, n) + 2**30 + 2 ** (31 - max(int(n - 1).bit_length(), 1)),
         "wide counts": rng.integers(0, 2**40, n),
         "negative counts": rng.integers(-50, 50, n),
         "uint32": rng.integers(0, 70_000, n).astype(np.uint32),
@@ -65,6 +69,15 @@ def test_stable_order_is_numpys_stable_argsort(n):
         got = _stable_order(column)
         want = np.argsort(np.asarray(column, dtype=float), kind="stable")
         assert np.array_equal(got, want), name
+
+
+@pytest.mark.parametrize("n", [300, 5000])
+def test_stable_orders_of_many_columns_at_once_are_numpys(n):
+    rng = np.random.default_rng(n + 7)
+    columns = columns_of_every_kind(rng, n)
+    got = _stable_orders(list(columns.values()))
+    for j, (name, column) in enumerate(columns.items()):
+        assert np.array_equal(got[j], np.argsort(np.asarray(column, dtype=float), kind="stable")), name
 
 
 def test_float_columns_take_the_packed_key_path():
