@@ -358,8 +358,12 @@ class IndividualModelSpec(_Strict):
         if repeated:
             _problem(problems, ("series",), f"series names must be unique, repeated: {repeated}", repeated)
         for i, s in enumerate(self.series):
-            if s.kind != "incidence":
-                _problem(problems, ("series", i, "kind"), f"series {s.name!r}: an individual-based model observes counts of events (kind = \"incidence\"), given {s.kind!r}", s.kind)
+            if s.kind not in ("incidence", "concentration"):
+                _problem(
+                    problems, ("series", i, "kind"),
+                    f"series {s.name!r}: an individual-based model observes counts of events (kind = \"incidence\") "
+                    f"or what its infections shed (kind = \"concentration\"), given {s.kind!r}", s.kind,
+                )
                 continue
             if s.flow not in EVENTS:
                 _problem(problems, ("series", i, "flow"), f"series {s.name!r}: event {s.flow!r} unknown; allowed: {list(EVENTS)}", s.flow)

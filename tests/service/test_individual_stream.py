@@ -151,3 +151,44 @@ def test_restart_from_the_checkpoint_is_bit_identical(tmp_path):
     split = first.published["estimates"] + second.published["estimates"]
     assert [r.value for r in split] == [r.value for r in straight.published["estimates"]]
     assert [r.value for r in first.published["alerts"] + second.published["alerts"]] == [r.value for r in straight.published["alerts"]]
+
+
+WASTEWATER = """
+[parameters.ww_scale]
+kind = "static"
+prior = { dist = "lognormal", mean_log = 8.0, sd_log = 0.3 }
+[[series]]
+name = "ww_hamlet"
+kind = "concentration"
+flow = "infection"
+shedding = { dist = "gamma", mean = 5.0, sd = 2.5, max_days = 14 }
+scale = "ww_scale"
+catchment = 0.8
+reference_flow = 2.0e6
+noise = { dist = "lognormal", sd = 0.3 }
+"""
+
+
+def test_a_town_stream_applies_wastewater_samples_and_forecasts_them(tmp_path):
+    """Through the service: concentration messages for an individual-based stream (samples with a
+    flow, one below the lab's limit) are applied, and estimates carry the series' forecast and the
+    one-step-ahead predictive of each sample. Bad input: a sample for a count series is a dead
+    letter `series_kind` with its bytes, the cloud untouched."""
+    config = _config(tmp_path, tmp_path / "ck")
+    model_path = tmp_path / "hamlet_flu.toml"
+    model_path.write_text(MODEL + WASTEWATER)
+    records = _records()[:8]
+    for day, value in ((6, 900.0), (9, None), (10, 2500.0)):  # day 6: a late sample, inside the window
+        period = (START + dt.timedelta(days=day)).isoformat()
+        sample = {"value": value, "lod": 400.0, "flow": 2.5e6}
+        records.append(orjson.dumps({"stream": STREAM, "period": period, "counts": {}, "concentrations": {"ww_hamlet": sample}}))
+    records.append(orjson.dumps({"stream": STREAM, "period": (START + dt.timedelta(days=11)).isoformat(),
+                                 "counts": {}, "concentrations": {"ed": {"value": 5.0}}}))
+    _, transport, counts = _run(config, records)
+    assert counts == {"applied": 11, "skipped": 0, "dead_letter": 1}
+    dead = orjson.loads(transport.published["dead_letters"][0].value)
+    assert dead["reason"] == "series_kind" and "ed" in dead["message"]
+    estimates = [orjson.loads(r.value) for r in transport.published["estimates"]]
+    assert "ww_hamlet" in estimates[-1]["forecast"]["series"]
+    predicted = [e["predictive"]["ww_hamlet"] for e in estimates if "ww_hamlet" in (e.get("predictive") or {})]
+    assert len(predicted) == 3
