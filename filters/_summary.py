@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -53,24 +54,51 @@ def _column_quantiles(columns: list[np.ndarray], weights: np.ndarray, probs: np.
             order = _stable_order(column)
             out[:, j] = column[order[_crossings(weights[order], targets)]]
         return out
-    orders = _stable_orders(columns)
+    q = len(columns)
     blocks = -(-n // _BLOCK)
-    sorted_w = np.zeros((len(columns), blocks * _BLOCK))  # zero-padded to whole blocks
-    sorted_w[:, :n] = weights[orders]
-    idx = _certified_crossings(sorted_w.reshape(len(columns), blocks, _BLOCK), n, targets)
+    orders = _workspace("orders", (q, blocks * _BLOCK), np.intp)
+    orders[:, n:] = n  # the padding to whole blocks points at a zero weight
+    _stable_orders(columns, orders)
+    extended = np.zeros(n + 1)
+    extended[:n] = weights
+    sorted_w = _workspace("sorted_w", orders.shape, np.float64)
+    np.take(extended, orders, out=sorted_w, mode="clip")  # (every index is in range: "clip" only skips a buffer)
+    idx = _certified_crossings(sorted_w.reshape(q, blocks, _BLOCK), n, targets)
     for j, column in enumerate(columns):
         row = idx[j] if idx is not None and idx[j, 0] >= 0 else _crossings(sorted_w[j, :n], targets)
-        out[:, j] = column[orders[j][row]]
+        out[:, j] = column[orders[j, row]]
     return out
 
 
-def _stable_orders(columns: list[np.ndarray]) -> np.ndarray:
-    """(q, n) :func:`_stable_order` of q columns of length n >= 2, the common
-    kinds sorted together: narrow whole-number columns as int32 keys and finite
-    float64 columns as packed keys, each in one 2-D sort (one call for all
-    columns instead of one per column; the same keys, so the same orders)."""
-    q, n = len(columns), columns[0].size
-    out = np.empty((q, n), dtype=np.intp)
+_SCRATCH = threading.local()
+
+
+def _workspace(name: str, shape: tuple[int, ...], dtype: type) -> np.ndarray:
+    """A scratch array kept by this thread from one summary to the next.
+
+    A summary of 10,000 particles needs a few MB of temporaries; allocated
+    afresh each time they come from the OS and go back to it (numpy's large
+    buffers are mmap'd by the C allocator), which cost hundreds of page faults
+    per filter step, more than the sorting they serve.
+    """
+    arrays = getattr(_SCRATCH, "arrays", None)
+    if arrays is None:
+        arrays = _SCRATCH.arrays = {}
+    found = arrays.get(name)
+    if found is None or found.shape != shape or found.dtype != dtype:
+        found = arrays[name] = np.empty(shape, dtype=dtype)
+    return found
+
+
+def _stable_orders(columns: list[np.ndarray], orders: np.ndarray) -> None:
+    """:func:`_stable_order` of q columns of length n >= 2 into ``orders[:, :n]``.
+
+    The common kinds are sorted together: narrow whole-number columns as int32
+    keys and finite float64 columns as packed keys, each kind in one 2-D sort
+    (one call for all its columns instead of one per column; the same keys, so
+    the same orders). Scratch arrays are reused (:func:`_workspace`).
+    """
+    n = columns[0].size
     bits = max(int(n - 1).bit_length(), 1)
     ints, floats, rest = [], [], []
     for j, column in enumerate(columns):
@@ -82,46 +110,58 @@ def _stable_orders(columns: list[np.ndarray]) -> np.ndarray:
         else:
             rest.append(j)
     if ints:
-        keys = np.stack([columns[j].astype(np.int64, copy=False) for j in ints])
+        keys = _workspace("int_keys", (len(ints), n), np.int64)
+        for r, j in enumerate(ints):
+            keys[r] = columns[j]
         lo, hi = keys.min(axis=1), keys.max(axis=1)
         fits = np.array([-_EXACT_INT < int(a) and int(b) < _EXACT_INT and int(b) - int(a) < 2 ** (31 - bits)
                          for a, b in zip(lo, hi)])
         rest += [j for j, ok in zip(ints, fits) if not ok]
         if fits.any():
-            rows = [j for j, ok in zip(ints, fits) if ok]
-            narrow = (keys[fits] - lo[fits, None]).astype(np.int32)
-            narrow <<= bits
-            narrow |= np.arange(n, dtype=np.int32)
-            narrow.sort(axis=1)
-            narrow &= (1 << bits) - 1
-            out[rows] = narrow
+            narrow = _workspace("int_narrow", keys.shape, np.int32)
+            np.subtract(keys, lo[:, None], out=narrow, casting="unsafe")  # exact where it fits
+            sortable = narrow if fits.all() else narrow[fits]
+            sortable <<= bits
+            sortable |= np.arange(n, dtype=np.int32)
+            sortable.sort(axis=1)
+            sortable &= (1 << bits) - 1
+            for r, j in enumerate(j for j, ok in zip(ints, fits) if ok):
+                orders[j, :n] = sortable[r]
     if floats:
-        x = np.stack([columns[j] for j in floats])
+        x = _workspace("float_values", (len(floats), n), np.float64)
+        for r, j in enumerate(floats):
+            x[r] = columns[j]
         x += 0.0  # -0.0 + 0.0 is +0.0: equal values get equal bit patterns
         lo, hi = x.min(axis=1), x.max(axis=1)
         finite = np.isfinite(lo) & np.isfinite(hi)
         rest += [j for j, ok in zip(floats, finite) if not ok]
         if finite.any():
             rows = [j for j, ok in zip(floats, finite) if ok]
-            x = x[finite]
-            keys = _float_key(x) if lo[finite].min() < 0 else x.view(np.int64)
+            values = x if finite.all() else x[finite]
+            packed = _workspace("float_keys", values.shape, np.uint64)
+            np.copyto(packed, values.view(np.uint64))
+            if lo[finite].min() < 0:
+                signed = packed.view(np.int64)
+                np.bitwise_xor(signed, _MAGNITUDE, out=signed, where=signed < 0)  # as _float_key
             ends = _float_key(np.stack([lo[finite] + 0.0, hi[finite] + 0.0], axis=1))
             klo = np.array([int(a) % 2**64 for a in ends[:, 0]], dtype=np.uint64)
             shift = np.array([max(0, (int(b) - int(a)).bit_length() - (63 - bits)) for a, b in ends], dtype=np.uint64)
             # key - klo lies in [0, khi - klo] < 2**64: exact in wrapping uint64 arithmetic.
-            packed = keys.view(np.uint64) - klo[:, None]
+            packed -= klo[:, None]
             packed >>= shift[:, None]
             packed <<= np.uint64(bits)
             packed |= np.arange(n, dtype=np.uint64)
             packed.sort(axis=1)
             packed &= np.uint64((1 << bits) - 1)
             order = packed.view(np.intp) if np.dtype(np.intp).itemsize == 8 else packed.astype(np.intp)
-            monotone = [bool(np.all(r[1:] >= r[:-1])) for r in (row[o] for row, o in zip(x, order))]
-            out[[j for j, ok in zip(rows, monotone) if ok]] = order[np.array(monotone, dtype=bool)]
-            rest += [j for j, ok in zip(rows, monotone) if not ok]
+            for r, j in enumerate(rows):
+                ranked = values[r][order[r]]
+                if np.all(ranked[1:] >= ranked[:-1]):
+                    orders[j, :n] = order[r]
+                else:
+                    rest.append(j)
     for j in rest:
-        out[j] = _stable_order(columns[j])
-    return out
+        orders[j, :n] = _stable_order(columns[j])
 
 
 def _crossings(sorted_w: np.ndarray, targets: np.ndarray) -> np.ndarray:

@@ -75,7 +75,8 @@ def test_stable_order_is_numpys_stable_argsort(n):
 def test_stable_orders_of_many_columns_at_once_are_numpys(n):
     rng = np.random.default_rng(n + 7)
     columns = columns_of_every_kind(rng, n)
-    got = _stable_orders(list(columns.values()))
+    got = np.empty((len(columns), n), dtype=np.intp)
+    _stable_orders(list(columns.values()), got)
     for j, (name, column) in enumerate(columns.items()):
         assert np.array_equal(got[j], np.argsort(np.asarray(column, dtype=float), kind="stable")), name
 
