@@ -493,8 +493,15 @@ def build_history_report(
                 latent_label = f"{qname}: latent daily incidence behind {name} (before reporting fraction and delay)"
         if fband is None and latent is None and not (obs and obs[0]) and not (unmatched and unmatched[0]):
             continue  # nothing to draw for this series
+        kind = s.kind if s is not None else ("positivity" if feed and name in feed.tests else
+                                             "concentration" if feed and name in feed.levels else "incidence")
+        what, ylabel = {"positivity": ("share of tests positive", "share positive"),
+                        "concentration": ("samples (at their flow) and the level forecast (at the reference flow)",
+                                          "concentration")}.get(kind, ("reported counts", "count per period"))
+        dots = {"positivity": "observed shares positive (positives / tests)",
+                "concentration": 'detected samples (those below the limit are drawn under <a href="#predictive">one-step predictive</a>)'}.get(kind, "observed counts")
         path = page.figure(parts, f"series_{_safe(name)}.png", f"fan chart of {name}",
-                           f"<b>{_esc(name)}</b>: black dots are observed counts of periods the stream applied"
+                           f"<b>{_esc(name)}</b>: black dots are {dots} of periods the stream applied"
                            + (" (open red circles: periods without an estimate, e.g. rejected or not yet applied)" if unmatched and unmatched[0] else "")
                            + "; purple: the latest estimate's forecast (median, 50 % and 90 % bands, dotted mean) "
                            "including observation noise"
@@ -503,7 +510,7 @@ def build_history_report(
                               'so the last periods still read low (see <a href="#nowcast">Nowcasts</a>).'
                               if any((e.nowcast or {}).get(name) for e in estimates) else ""))
         rf.series_figure(path, name, obs, unmatched, fband, fmean, latent, latent_label, thresholds.get(name), last_date,
-                           first_date=dates[0])
+                         first_date=dates[0], what=what, ylabel=ylabel)
 
     _nowcast_section(page, estimates)
     _predictive_section(page, estimates, spec_series)

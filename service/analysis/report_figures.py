@@ -126,7 +126,8 @@ def band_panels(
     _save(fig, path)
 
 
-def _draw_reported(ax, observed, unmatched, forecast, forecast_mean, threshold, last_date, legend: bool) -> None:
+def _draw_reported(ax, observed, unmatched, forecast, forecast_mean, threshold, last_date, legend: bool,
+                   ylabel: str = "count per period") -> None:
     if forecast is not None:
         _draw_band(ax, forecast, FORECAST, "forecast")
     if forecast_mean is not None:
@@ -140,7 +141,7 @@ def _draw_reported(ax, observed, unmatched, forecast, forecast_mean, threshold, 
         ax.axhline(threshold, color=DANGER, linewidth=1.0, linestyle="--", label=f"alert threshold {threshold:g}")
     if last_date is not None:
         ax.axvline(last_date, color="#555555", linewidth=0.8, linestyle="-.", label="latest estimate")
-    ax.set_ylabel("count per period", fontsize=9)
+    ax.set_ylabel(ylabel, fontsize=9)
     if legend:
         ax.legend(fontsize=8, loc="upper left", ncols=3)
     _dates_axis(ax)
@@ -159,10 +160,13 @@ def series_figure(
     last_date: dt.date | None,
     first_date: dt.date,
     zoom_days: int = 42,
+    what: str = "reported counts",
+    ylabel: str = "count per period",
 ) -> None:
     """Reported counts over the whole window (observed + forecast fan), the same zoomed on the
     last ``zoom_days`` and the forecast, and the latent incidence behind the series. With no
-    reported counts and no forecast, only the latent incidence is drawn."""
+    reported counts and no forecast, only the latent incidence is drawn. ``what`` and ``ylabel``
+    name the values (e.g. a share positive or a concentration)."""
     reported = forecast is not None or any(p is not None and len(p[0]) for p in (observed, unmatched))
     rows = (2 if reported else 0) + (1 if latent is not None else 0)
     fig = Figure(figsize=(11.0, 2.9 * rows + 0.6), dpi=DPI, layout="constrained")
@@ -182,14 +186,14 @@ def series_figure(
         return
     args = (observed, unmatched, forecast, forecast_mean, threshold, last_date)
     ax = axes[0, 0]
-    _draw_reported(ax, *args, legend=False)
+    _draw_reported(ax, *args, legend=False, ylabel=ylabel)
     handles, labels = ax.get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside upper right", fontsize=8, ncols=4, frameon=False)
-    ax.set_title(f"{series}: reported counts, whole window", fontsize=10, loc="left")
+    ax.set_title(f"{series}: {what}, whole window", fontsize=10, loc="left")
     ax.set_ylim(bottom=0)
     ax.set_xlim(*window)
     zax = axes[1, 0]
-    _draw_reported(zax, *args, legend=False)
+    _draw_reported(zax, *args, legend=False, ylabel=ylabel)
     if last_date is not None:
         lo = last_date - dt.timedelta(days=zoom_days)
         hi = forecast.dates[-1] if forecast is not None and len(forecast) else last_date
@@ -202,7 +206,9 @@ def series_figure(
             visible += [v for v in forecast.hi90 if np.isfinite(v)]
         if threshold is not None:
             visible.append(threshold)
-        zax.set_ylim(0, max(1.0, 1.08 * max(visible)))
+        top = 1.08 * max(visible)
+        # counts: at least 0..1; shares and levels: their own scale
+        zax.set_ylim(0, top if top > 0 and ylabel != "count per period" else max(1.0, top))
         zax.set_title(f"{series}: last {zoom_days} days and the forecast", fontsize=10, loc="left")
     if latent is not None:
         lax = axes[2, 0]
