@@ -364,6 +364,7 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
                 found[name] = np.ascontiguousarray(np.broadcast_to(value, shape))
             found["N"] = np.ascontiguousarray(np.broadcast_to(self.population.astype(float), shape))
             found["N_int"] = np.ascontiguousarray(np.broadcast_to(self.population, shape))
+            found["foi=0"], found["foi=1"] = np.zeros(shape), np.ones(shape)  # (not identifiers: no clash)
             for arr in found.values():
                 arr.flags.writeable = False
             if len(cache) >= 8:
@@ -736,6 +737,21 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
         naive = ParticleSet(states=counts, params=particles.params, history=particles.history[:, :0])
         return self.reproduction_number(naive, t)
 
+    def _ngm_plan(self) -> tuple[dict[int, int], list[int], list[int], list[int], bool]:
+        """What :meth:`reproduction_number` needs from the flow graph, worked out once:
+        the infected classes' positions, the infection flows entering them, the other
+        flows leaving them, the entry classes and whether an exit rate reads foi."""
+        plan = getattr(self, "_ngm_cache", None)
+        if plan is None:
+            pos = {c: k for k, c in enumerate(self._infected)}
+            infection = self._infection_flows
+            entering = [f for f in infection if self._flow_ends[f][1] in pos]
+            exits = [f for f, (src, _) in enumerate(self._flow_ends) if src in pos and f not in infection]
+            entries = sorted({pos[self._flow_ends[f][1]] for f in entering})
+            reads_foi = any("foi" in self._flow_rates[f].names for f in exits)
+            plan = self._ngm_cache = (pos, entering, exits, entries, reads_foi)
+        return plan
+
     def reproduction_number(self, particles: ParticleSet, t: float = 0.0, today: Any = None) -> np.ndarray:
         """Effective reproduction number per particle from the next-generation matrix
         (van den Driessche & Watmough 2002), at the particles' current susceptibles.
@@ -763,22 +779,20 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
         if not infected or not infection:
             return np.full(n, np.nan)
         G, m_c = self.n_groups, len(infected)
-        pos = {c: k for k, c in enumerate(infected)}
-        entering = [f for f in infection if self._flow_ends[f][1] in pos]
+        pos, entering, exits, entries, exits_read_foi = self._ngm_plan()
         if not entering:
             return np.zeros(n)  # F = 0
         counts = particles.states
         scalars = self._scalars(particles.params, t)
         # The slopes of infection rates are taken with foi set to 0 and 1; the force of
         # infection itself is only needed if a rate that enters V reads it.
-        exits = [f for f, (src, _) in enumerate(self._flow_ends) if src in pos and f not in infection]
         columns = [counts[:, :, c] for c in range(self.n_compartments)]
         env = self._substep_env(self._day_env(scalars, t, n), scalars, columns, t, with_foi=False)
-        env0 = dict(env, foi=np.zeros((n, G)), imported=0.0)
-        env1 = dict(env, foi=np.ones((n, G)), imported=0.0)
-        if any("foi" in self._flow_rates[f].names for f in exits):
+        full = self._full_constants(n)
+        env0 = dict(env, foi=full["foi=0"], imported=0.0)
+        env1 = dict(env, foi=full["foi=1"], imported=0.0)
+        if exits_read_foi:
             env["foi"] = self._foi(counts)
-        entries = sorted({pos[self._flow_ends[f][1]] for f in entering})
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             # a[i]: (n, G) sum of slope x susceptibles over infection flows entering class entries[i].
             a = [np.zeros((n, G)) for _ in entries]
@@ -804,7 +818,8 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
                 V[i][i] = V[i][i] + 1e-12
             transposed = [[V[j][i] for j in range(m_c)] for i in range(m_c)]
             u = _solve_table(transposed, [float(self._infectious_w[c]) for c in infected])
-            u = [np.broadcast_to(np.asarray(x, dtype=float), (n, G)) for x in u]
+            u = [x if isinstance(x, np.ndarray) and x.shape == (n, G) and x.dtype == float
+                 else np.broadcast_to(np.asarray(x, dtype=float), (n, G)) for x in u]
             contact = self.contact if today is None or today.contact_t is None else today.contact_t.T
             coupling = contact / self.population[None, :]  # C[g, h] / N_h
             rows = [(g, i) for g in range(G) for i in range(len(entries))]
