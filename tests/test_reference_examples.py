@@ -19,7 +19,7 @@ def _spec_part() -> str:
 
 
 def _toml_blocks() -> list[dict]:
-    return [tomllib.loads(block) for block in re.findall(r"```toml\n(.*?)```", _spec_part(), flags=re.S)]
+    return [tomllib.loads(block) for block in re.findall(r"```toml\n(.*?)```", _spec_part(), flags=re.DOTALL)]
 
 
 def test_every_toml_example_validates():
@@ -38,7 +38,7 @@ def test_every_toml_example_validates():
 def test_each_series_kind_has_its_row_and_an_example():
     kinds = set(typing.get_args(Series.model_fields["kind"].annotation))
     part = _spec_part()
-    rows = set(re.findall(r"^\| `(\w+)` \|", part[part.index("### Series kinds") :], flags=re.M))
+    rows = set(re.findall(r"^\| `(\w+)` \|", part[part.index("### Series kinds") :], flags=re.MULTILINE))
     examples = {s["kind"] for block in _toml_blocks() for s in block.get("series", [])}
     # Bug caught: a kind added to the schema but left out of the reference (no row, no example).
     assert rows == kinds and examples == kinds

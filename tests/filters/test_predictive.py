@@ -81,7 +81,7 @@ def test_mixture_quantiles_invert_the_mixture_cdf():
     w = np.array([0.5, 0.3, 0.2])
     mu, k = np.array([4.0, 30.0, 90.0]), np.array([3.0, 10.0, 40.0])
     p = one_step_predictive(PredictiveLaw("negbin", {"mean": mu, "size": k}), w, 33.0, PROBS)
-    cdf = lambda y: w @ stats.nbinom.cdf(np.asarray(y)[None, :], k[:, None], (k / (k + mu))[:, None])  # noqa: E731
+    cdf = lambda y: w @ stats.nbinom.cdf(np.asarray(y)[None, :], k[:, None], (k / (k + mu))[:, None])
     # Bug caught: quantiles of the weighted mean of the parameters, or of one particle, or weights ignored.
     assert [p.quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(cdf, PROBS, 400)
     assert p.pit == pytest.approx(float(0.5 * (cdf([32]) + cdf([33]))[0]), rel=1e-9)
@@ -105,7 +105,7 @@ def test_a_large_cloud_is_summarised_through_a_systematic_subsample():
     rng = np.random.default_rng(21)
     mu, w = rng.uniform(20, 80, 5000), rng.dirichlet(np.ones(5000))
     p = one_step_predictive(PredictiveLaw("poisson", {"mean": mu}), w, 47.0, PROBS)
-    cdf = lambda y: w @ stats.poisson.cdf(np.asarray(y)[None, :], mu[:, None])  # noqa: E731
+    cdf = lambda y: w @ stats.poisson.cdf(np.asarray(y)[None, :], mu[:, None])
     exact = _discrete_mixture_quantiles(cdf, PROBS, 300)
     assert all(abs(p.quantiles[q] - e) <= 1 for q, e in zip(PROBS, exact))
     assert p.pit == pytest.approx(float(0.5 * (cdf([46]) + cdf([47]))[0]), abs=0.01)
@@ -187,9 +187,9 @@ def test_the_filter_gives_the_predictive_of_the_moved_cloud_before_weighing():
     got = {r.series: p for r, p in result.predictive}
     # Bug caught: the predictive taken after the step re-weighted the cloud, with equal weights, on the
     # cloud before it moved, at the wrong lag for a late sample, or without the sample's dilution.
-    cdf = lambda y: w @ stats.nbinom.cdf(np.asarray(y)[None, :], k[:, None], (k / (k + mu))[:, None])  # noqa: E731
+    cdf = lambda y: w @ stats.nbinom.cdf(np.asarray(y)[None, :], k[:, None], (k / (k + mu))[:, None])
     assert [got["ed_child"].quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(cdf, PROBS, 2000)
-    cdf = lambda y: w @ stats.betabinom.cdf(np.asarray(y)[None, :], 120, a[:, None], b[:, None])  # noqa: E731
+    cdf = lambda y: w @ stats.betabinom.cdf(np.asarray(y)[None, :], 120, a[:, None], b[:, None])
     assert [got["lab_positivity"].quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(cdf, PROBS, 120)
     sd = 0.35
     for q in PROBS:

@@ -17,7 +17,6 @@ from pathlib import Path
 import numpy as np
 import orjson
 import pytest
-
 from scipy import stats
 
 from filters import CompartmentalModel, reporting_cdf, simulate_season
