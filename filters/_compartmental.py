@@ -827,19 +827,28 @@ class CompartmentalModel(ObservedSeries, ParameterScales):
             return _spectral_radius(K, n)
 
     def describe(self, particles: ParticleSet, t: float = 0.0) -> dict[str, np.ndarray]:
+        """Per-particle quantities to summarise: counts per compartment and group, the
+        day's incidence of observed flows, the non-fixed parameters and R_eff.
+
+        Each is a contiguous (n,) array: the counts (and parameters, and the day's
+        incidence) are transposed in one copy each, much cheaper than reading every
+        column through a strided view (a summary sorts and copies each column).
+        """
         out: dict[str, np.ndarray] = {}
-        counts = particles.states
+        by_column = np.ascontiguousarray(particles.states.transpose(2, 1, 0))  # (C, G, n)
         for c, cname in enumerate(self.compartments):
             for g, gname in enumerate(self.groups):
-                out[f"{cname}[{gname}]"] = counts[:, g, c]
+                out[f"{cname}[{gname}]"] = by_column[c, g]
         if self.history_days:
             flow_names = [f.name for f in self.spec.flows]
+            today = np.ascontiguousarray(particles.history[:, 0].transpose(1, 2, 0))  # (flows, G, n)
             for k, f in enumerate(self._observed_flows):
                 for g, gname in enumerate(self.groups):
-                    out[f"incidence.{flow_names[f]}[{gname}]"] = particles.history[:, 0, k, g]
+                    out[f"incidence.{flow_names[f]}[{gname}]"] = today[k, g]
+        params = np.ascontiguousarray(particles.params.T)
         for j, name in enumerate(self.param_names):
             if self.spec.parameters[name].kind != "fixed":
-                out[name] = particles.params[:, j]
+                out[name] = params[j]
         out["R_eff"] = self.reproduction_number(particles, t)
         return out
 
