@@ -435,6 +435,17 @@ class RecordProcessor:
                         "tests are final on arrival",
                         sid,
                     )
+            if float(value) == total and series.kind == "concentration":
+                # the same level at another flow or limit of detection is another measurement
+                before, sample = runtime.samples.get(name, {}).get(day), (message.concentrations or {}).get(name)
+                now_sample = (sample.lod, sample.flow) if sample is not None else None
+                if before is not None and now_sample is not None and tuple(before) != now_sample:
+                    raise _Reject(
+                        "not_revisable",
+                        f"series {name!r}: a sample of {total:g} with (lod, flow) = {tuple(before)} was assimilated for "
+                        f"{message.period}, now {value} with (lod, flow) = {now_sample}; a period's sample is final on arrival",
+                        sid,
+                    )
             if float(value) == total:
                 plan.skipped.append("duplicate_period")
             elif not series.event_dated:
@@ -572,8 +583,11 @@ class RecordProcessor:
                 tests = (message.tests or {}).get(name)
                 if tests is not None and getattr(runtime.model.series_named(name), "kind", None) == "positivity":
                     runtime.tests.setdefault(name, {})[plan.day] = float(tests)
+                sample = (message.concentrations or {}).get(name)
+                if sample is not None:
+                    runtime.samples.setdefault(name, {})[plan.day] = (sample.lod, sample.flow)
         oldest = pf.time - runtime.model.window_days
-        for days in [*runtime.known.values(), *runtime.tests.values()]:
+        for days in [*runtime.known.values(), *runtime.tests.values(), *runtime.samples.values()]:
             for d in [d for d in days if d < oldest]:
                 del days[d]
         weights = pf.weights()

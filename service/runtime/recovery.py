@@ -45,7 +45,7 @@ from ..transports import FileTransport
 from ..transports.base import OutRecord, Record, Transport
 from .metrics import Metrics
 from .processor import RecordProcessor
-from .streams import StreamRegistry
+from .streams import StreamRegistry, samples_from_header
 
 __all__ = [
     "RebuildReport",
@@ -450,6 +450,7 @@ def migrate_stream(
             for series, ds in cp.header.get("tests", {}).items()
             if series in {x.name for x in new_model.series}
         }
+        runtime.samples = samples_from_header(cp.header, {x.name for x in new_model.series})
         runtime.operations = [*cp.header.get("operations", []), {"action": "migrate", **{k: plan[k] for k in ("from", "to")}, "at": _now()}]
         info = store.write(runtime.to_checkpoint())
         plan["written"] = str(info.path)

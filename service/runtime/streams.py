@@ -48,6 +48,8 @@ class StreamRuntime:
     known: dict[str, dict[int, tuple[float, int | None]]] = field(default_factory=dict)
     # positivity series -> day -> the tests behind the positives assimilated, inside the window
     tests: dict[str, dict[int, float]] = field(default_factory=dict)
+    # concentration series -> event day -> (lod, flow) of the sample assimilated, inside the window
+    samples: dict[str, dict[int, tuple[float | None, float | None]]] = field(default_factory=dict)
     alerts: dict[str, AlertState] = field(default_factory=dict)
     saved_at: float | None = None  # when the checkpoint it was restored from was written (file time)
     # Lost-state guard: ``fresh`` until the first record shows whether the stream is new;
@@ -86,9 +88,20 @@ class StreamRuntime:
                 },
                 **({"tests": {series: {str(day): n for day, n in sorted(days.items())} for series, days in sorted(self.tests.items()) if days}}
                    if any(self.tests.values()) else {}),
+                **({"samples": {series: {str(day): list(s) for day, s in sorted(days.items())} for series, days in sorted(self.samples.items()) if days}}
+                   if any(self.samples.values()) else {}),
             },
             arrays=arrays,
         )
+
+
+def samples_from_header(header: dict, keep: set[str] | None = None) -> dict[str, dict[int, tuple[float | None, float | None]]]:
+    """The (lod, flow) of the concentration samples a checkpoint header holds (``keep``: only these series)."""
+    return {
+        series: {int(day): (lod, flow) for day, (lod, flow) in days.items()}
+        for series, days in header.get("samples", {}).items()
+        if keep is None or series in keep
+    }
 
 
 def _file_time(path: Path) -> float | None:
@@ -168,6 +181,7 @@ class StreamRegistry:
                 for series, days in cp.header.get("known", {}).items()
             },
             tests={series: {int(day): float(n) for day, n in days.items()} for series, days in cp.header.get("tests", {}).items()},
+            samples=samples_from_header(cp.header),
             saved_at=_file_time(loaded.path),
         )
 

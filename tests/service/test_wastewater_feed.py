@@ -176,3 +176,25 @@ def test_bad_samples_are_dead_letters(tmp_path, bad, reason, mentions):
     assert run.trace[2]["cloud"] == run.trace[1]["cloud"]
     assert run.trace[2]["files"] == run.trace[1]["files"]
     assert run.registry.get_sample_value("casecloud_messages_dead_lettered_total", {"reason": reason}) == 1.0
+
+
+def test_the_same_level_at_another_flow_or_limit_is_not_a_duplicate(tmp_path):
+    """A re-sent sample with the same level but another flow (or limit of detection) is another
+    measurement: a dead letter ``not_revisable`` naming both, the cloud untouched; the very same
+    sample again is a duplicate (skipped). The (lod, flow) of assimilated samples survive a
+    restart. Bug caught: duplicates told apart by the level alone (a corrected flow silently
+    dropped as a duplicate)."""
+    same = msg(5, {"cases": 10}, {"ww_west": {"value": 150.0, "lod": 20.0, "flow": 2.2e7}})
+    other_flow = msg(5, {"cases": 10}, {"ww_west": {"value": 150.0, "lod": 20.0, "flow": 3.0e7}})
+    other_lod = msg(5, {"cases": 10}, {"ww_west": {"value": 150.0, "lod": 40.0, "flow": 2.2e7}})
+    run = Run(tmp_path / "live", [good(4), same, same, other_flow, other_lod, good(6)])
+    assert [t["outcome"].status for t in run.trace] == ["applied", "applied", "skipped", "dead_letter", "dead_letter", "applied"]
+    first, second = run.letters()
+    assert first.reason == second.reason == "not_revisable" and base64.b64decode(first.original_base64) == other_flow
+    assert "(20.0, 22000000.0)" in first.message and "(20.0, 30000000.0)" in first.message
+    assert "(20.0, 22000000.0)" in second.message and "(40.0, 22000000.0)" in second.message
+    assert run.trace[4]["cloud"] == run.trace[2]["cloud"] and run.trace[4]["files"] == run.trace[2]["files"]
+    Run(tmp_path / "restart", [good(4), same])
+    again = Run(tmp_path / "restart", [good(4), same, other_flow])
+    assert again.counts == {"applied": 0, "skipped": 0, "dead_letter": 1}
+    assert [x.reason for x in again.letters()] == ["not_revisable"]
