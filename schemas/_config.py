@@ -78,6 +78,11 @@ class StreamConfig(_Section):
     forecast_trajectories: int = Field(default=500, ge=10, le=100_000)
     forecast_horizon_days: int = Field(default=28, ge=1, le=90)
     publish_forecast: bool = Field(default=True, description="include the forecast block in every estimate")
+    publish_predictive: bool = Field(
+        default=True,
+        description="include in every estimate each assimilated value's one-step-ahead predictive (the value against "
+        "what the cloud expected of it; a few ms a step)",
+    )
     assimilation_window_days: int | None = Field(
         default=None,
         ge=0,

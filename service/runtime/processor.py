@@ -575,7 +575,7 @@ class RecordProcessor:
     def _step(self, runtime: StreamRuntime, message: ObservationMessage, plan: _Plan):
         """CPU work (runs in a worker thread): assimilate, summarise, nowcast, forecast."""
         pf, cfg = runtime.filter, runtime.config
-        result = pf.assimilate(plan.time, plan.reports, predictive=pf.config.summary_probs)
+        result = pf.assimilate(plan.time, plan.reports, predictive=pf.config.summary_probs if cfg.publish_predictive else None)
         predictive = self._predictive(message, result)
         if not result.collapsed:
             for name, entry in plan.updates.items():

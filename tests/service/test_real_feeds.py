@@ -260,3 +260,25 @@ def test_a_null_of_the_other_cadence_is_not_a_cadence_error(tmp_path):
     run = Run(tmp_path, [*warm_up(3), msg(day(4), {"ed_child": 3, "ed_adult": 9, "lab_confirmed": None})])
     assert run.reasons()[-1] is None and run.counts["dead_letter"] == 0
 
+
+
+# ------------------------------------------------------------- one-step-ahead predictive
+def test_each_estimate_carries_the_predictive_of_its_values_and_a_revision_as_a_total(tmp_path):
+    lab = [msg(week_ending(13), {"lab_confirmed": 20}, as_of=day(14)),
+           msg(week_ending(13), {"lab_confirmed": 31}, as_of=day(16))]
+    records = [*warm_up(14), lab[0], ed(15, 4, 10), ed(16, 5, 9), lab[1]]
+    est = Run(tmp_path, records).estimates()
+    # Bug caught: a value without its check, or a check of another series than the message's.
+    assert [sorted(e.predictive) for e in est] == [["ed_adult", "ed_child"]] * 14 + [["lab_confirmed"]] + [
+        ["ed_adult", "ed_child"]] * 2 + [["lab_confirmed"]]
+    first, revised = est[14].predictive["lab_confirmed"], est[-1].predictive["lab_confirmed"]
+    assert (first.period, first.as_of, first.observed) == (week_ending(13), day(14), 20.0)
+    assert (revised.as_of, revised.observed) == (day(16), 31.0)
+    # The revision is judged by its increment (11) but shown as a total: at least the 20 known before.
+    assert min(revised.quantiles.values()) >= 20.0 and revised.mean > 20.0
+    assert est[3].predictive["ed_child"].observed == float(3 + 4 % 4)
+
+
+def test_a_stream_can_leave_the_predictive_out(tmp_path):
+    est = Run(tmp_path, warm_up(3), publish_predictive=False).estimates()
+    assert len(est) == 3 and all(e.predictive is None for e in est)
