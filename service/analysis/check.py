@@ -61,6 +61,8 @@ class CheckResult:
     compartments: dict[str, tuple[float, float]] = field(default_factory=dict)
     rates: dict[str, tuple[float, float]] = field(default_factory=dict)
     series: dict[str, np.ndarray] = field(default_factory=dict)  # name -> (days, n) draws, day 1 first
+    # positivity series with beta-binomial noise -> (days, n) concentration phi of each draw
+    positivity_phi: dict[str, np.ndarray] = field(default_factory=dict)
     conflicts: list[dict[str, Any]] = field(default_factory=list)
 
     def summary(self) -> dict[str, Any]:
@@ -111,6 +113,7 @@ def check_spec(model, particles: int = 1000, days: int = 60, seed: int = 1) -> C
         rate_lo = {f.name: np.inf for f in model.spec.flows}
         rate_hi = {f.name: -np.inf for f in model.spec.flows}
         draws: dict[str, list[np.ndarray]] = {s.name: [] for s in model.series}
+        phis: dict[str, list[np.ndarray]] = {s.name: [] for s in model.series if s.kind == "positivity" and s.noise != "binomial"}
         previous_s = s0.copy()
         infections = np.zeros(particles)
         daily_new = []
@@ -137,9 +140,13 @@ def check_spec(model, particles: int = 1000, days: int = 60, seed: int = 1) -> C
                 result.attack_week = infections / total
             for name, values in model.sample_observation(ps, rng).items():
                 draws[name].append(np.asarray(values, dtype=float))
+            for name in phis:
+                s = model.series_named(name)
+                phis[name].append(np.broadcast_to(model._column(ps.params, s.dispersion_param, s.dispersion), (particles,)).astype(float))
         result.compartments = {c: (lows[c], highs[c]) for c in model.compartments}
         result.rates = {f: (rate_lo[f], rate_hi[f]) for f in rate_lo}
         result.series = {name: np.array(v) for name, v in draws.items() if v}
+        result.positivity_phi = {name: np.array(v) for name, v in phis.items() if v}
         result.attack = infections / total
         if daily_new:
             stacked = np.array(daily_new)  # (days, n)
@@ -182,6 +189,27 @@ def _on_band_scale(model, history, i: int, name: str) -> tuple[float | None, flo
     return value, None
 
 
+def _band(result: CheckResult, model, history, i: int, name: str, day: int) -> tuple[float, float]:
+    """The central 99 % prior predictive band of row ``i``'s value on day ``day``.
+
+    A positivity row's share is positives / tests: the draws' shares positive p are turned into
+    shares of the row's own number of tests (Binomial(tests, p), or beta-binomial with each
+    draw's concentration), so the band holds the test-count noise a real share carries; with
+    few tests it is much wider than the band of p."""
+    draws = result.series[name][day - 1]
+    tests = history.details(i)[0].get(name) if getattr(model.series_named(name), "kind", "") == "positivity" else None
+    if tests:
+        rng = np.random.default_rng([day, i])  # fixed: the same history gives the same band
+        p = np.clip(draws, 0.0, 1.0)
+        phi = result.positivity_phi.get(name)
+        if phi is not None:
+            a, b = p * phi[day - 1], (1.0 - p) * phi[day - 1]
+            p = np.where((a > 0) & (b > 0), rng.beta(np.maximum(a, 1e-300), np.maximum(b, 1e-300)), p)
+        draws = rng.binomial(int(tests), p) / tests
+    lo, hi = np.quantile(draws, BAND)
+    return float(lo), float(hi)
+
+
 def _conflicts(result: CheckResult, model, history, start: dt.date) -> None:
     weekly = {s.name for s in model.series if s.weekly}
     for i, (period, date, counts) in enumerate(zip(history.periods, history.dates, history.values)):
@@ -192,7 +220,7 @@ def _conflicts(result: CheckResult, model, history, start: dt.date) -> None:
                 continue
             if (name in weekly) != ("W" in period):
                 continue
-            lo, hi = np.quantile(result.series[name][day - 1], BAND)
+            lo, hi = _band(result, model, history, i, name, day)
             # a sample below its limit conflicts only if the band lies wholly above the limit
             if (lo > below) if below is not None else not lo <= value <= hi:
                 result.conflicts.append({"period": period, "series": name, "observed": value, "band": [float(lo), float(hi)]})

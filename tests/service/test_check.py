@@ -11,6 +11,7 @@ External checks:
 
 from __future__ import annotations
 
+import datetime as dt
 import math
 
 import numpy as np
@@ -141,3 +142,37 @@ def test_positivity_and_concentration_rows_are_held_against_the_band_on_its_own_
     assert code == 1
     assert [(c["period"], c["series"]) for c in summary["prior_data_conflicts"]] == [("2026-01-04", "lab_pos"), ("2026-01-06", "ww")]
     assert summary["prior_data_conflicts"][0]["observed"] == 1.0  # 200 of 200: the share
+
+
+def test_positivity_rows_drawn_from_the_prior_rarely_conflict_whatever_their_number_of_tests(tmp_path):
+    """Calibration of the band: a history drawn from the model's own prior predictive lies outside
+    the central 99 % band on about 1 % of rows (the prior predictive check, Box 1980), also when a
+    day has few tests, because the band carries the test-count noise of the row's share. Bug
+    caught (it was there): the band of the share positive p alone, which with 15 tests a day flagged
+    279 of these rows. 30 seasons x 12 days = 360 rows: a correct band flags about Binomial(360,
+    0.01) rows, mean 3.6, sd 1.9 (rows of one season are correlated, so allow up to 15); measured
+    when written: 1."""
+    from pathlib import Path
+
+    from filters import simulate_season
+    from schemas import load_history
+    from service.analysis.check import _conflicts
+
+    spec = Path(__file__).parents[1] / "filters" / "specs" / "sir_all_kinds.toml"
+    model = CompartmentalModel(load_model_spec(spec))
+    result = check_spec(model, particles=2000, days=12, seed=4)
+    flagged = rows = 0
+    for season in range(30):
+        sim = simulate_season(model, 12, np.random.default_rng([77, season]), tests={"lab_pos": 15})
+        lines = ["period,lab_pos,lab_pos.tests"]
+        for obs in sim.observations:
+            lines.append(f"{(dt.date(2026, 1, 1) + dt.timedelta(days=obs.time)).isoformat()},{int(obs.values['lab_pos'])},15")
+        path = tmp_path / f"season{season}.csv"
+        path.write_text("\n".join(lines) + "\n")
+        history = load_history(path, ["lab_pos"])
+        result.conflicts = []
+        _conflicts(result, model, history, dt.date(2026, 1, 1))
+        flagged += len(result.conflicts)
+        rows += len(history.periods)
+    assert rows == 360
+    assert flagged <= 15, flagged
