@@ -369,6 +369,34 @@ def _sum_into(out: np.ndarray, parts: list[np.ndarray]) -> None:
     out[...] = total
 
 
+def _remembering_expected(stepper: Any) -> tuple[Any, dict]:
+    """A shallow copy of ``stepper`` whose ``expected(particles, series)`` keeps its
+    answers in the returned dict until the caller clears it.
+
+    ``sample_observation`` computes each count series' expected values to draw
+    around them, and the forecast stores the same expected values right after, for
+    the same particles: the second call is answered from the first (expected values
+    are a deterministic function of the particles, which nothing changes in between;
+    tests/filters/test_forecast.py checks them against ``model.expected`` day by day).
+    """
+    compute = getattr(type(stepper), "expected", None)
+    if not callable(compute):
+        return stepper, {}
+    remembering = copy.copy(stepper)
+    bound = compute.__get__(remembering)
+    found: dict[tuple[int, str], np.ndarray] = {}
+
+    def expected(particles: ParticleSet, series: str) -> np.ndarray:
+        key = (id(particles), series)
+        value = found.get(key)
+        if value is None:
+            value = found[key] = bound(particles, series)
+        return value
+
+    remembering.expected = expected
+    return remembering, found
+
+
 def _seeded(*words: int) -> np.random.Generator:
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(list(words))))
 
@@ -482,6 +510,7 @@ def forecast(
     index = resample(w, select, "systematic", n=n)
     track = _tracking(model, particles.take(index))
     stepper, futures = track.stepper, track.futures
+    stepper, day_expected = _remembering_expected(stepper)
     names = [s.name for s in model.series]
     # Positivity series forecast their share positive, concentration series a level: floats.
     measures = {s.name: {"positivity": "share", "concentration": "level"}[getattr(s, "kind", "")]
@@ -502,6 +531,7 @@ def forecast(
     for h in range(1, horizon + 1):
         day_rng = rng if rng is not None else _seeded(seed, 1, h)  # type: ignore[arg-type]
         t0, t1 = start + h - 1, start + h
+        day_expected.clear()  # the futures move on: yesterday's expected counts are stale
         if effects is None:
             stepper.advance(futures, t0, t1, day_rng)
         else:
