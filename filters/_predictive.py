@@ -167,6 +167,10 @@ def _count_predictive(law: PredictiveLaw, p, w, observed, probs) -> Predictive:
     pit = None
     if y is not None and y < 0:  # below the total already known: impossible under the law
         pit = 0.0
+    elif y is not None and int(y) - lo >= ks.size:
+        # Above the grid, which then ends at the largest number of trials of any particle (a binomial
+        # law): the value is impossible under every particle and all the mass lies below it.
+        pit = float(cdf[-1])
     elif y is not None:
         i = int(y) - lo
         below = cdf[i - 1] if i >= 1 else float(w @ _count_cdf_below(law, p, int(y)))

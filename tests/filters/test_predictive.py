@@ -57,6 +57,24 @@ def test_one_particle_count_quantiles_and_pit_are_scipys(law, ref):
     assert p.mean == pytest.approx(ref.mean(), rel=1e-12)
 
 
+@pytest.mark.parametrize("family", ["binomial", "betabinomial"])
+def test_a_count_above_every_particles_trials_is_judged_not_crashed(family):
+    """A reported count above every particle's number of trials (binomial reporting of 19 onsets at
+    most, 1,500 reported) is impossible under every particle: all the mass lies below it (PIT 1)
+    and the quantiles are those of the law (scipy). Bug caught (it was there): the grid, capped at
+    the largest number of trials, was indexed at the value, and the service stopped on an
+    IndexError."""
+    params = {"trials": np.array([12.0, 19.0]), "p": np.array([0.3, 0.5])}
+    if family == "betabinomial":
+        params["phi"] = np.array([40.0, 40.0])
+    w = np.array([0.5, 0.5])
+    p = one_step_predictive(PredictiveLaw(family, params), w, 1500.0, PROBS)
+    assert p.pit == pytest.approx(1.0, abs=1e-12)
+    if family == "binomial":
+        mix = lambda y: 0.5 * stats.binom.cdf(y, 12, 0.3) + 0.5 * stats.binom.cdf(y, 19, 0.5)  # noqa: E731
+        assert [p.quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(mix, PROBS, 19)
+
+
 def test_one_particle_levels_are_scipys_lognormal_and_t():
     law = PredictiveLaw("lognormal", {"median": np.array([300.0]), "sd": np.array([0.4])})
     p = one_step_predictive(law, ONE, 450.0, PROBS, lod=100.0)
