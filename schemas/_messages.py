@@ -418,6 +418,7 @@ class DeadLetter(_Message):
         "series_kind",
         "needs_recovery",
         "model_error",
+        "internal_error",
     ]
     message: str
     stream: str | None = None

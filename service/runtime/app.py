@@ -92,13 +92,16 @@ class Service:
                 f"not ready: the broker has been unreachable for {time.monotonic() - since:.0f} s ({reason}); "
                 "waiting for it, nothing is committed meanwhile"
             )
-        held, broken = self.registry.held(), self.registry.broken()
-        if held or broken:
+        held, broken = self.registry.held(), self.registry.broken("model_error")
+        failed = self.registry.broken("internal_error")
+        if held or broken or failed:
             parts = []
             if held:
                 parts.append(f"streams held for lost state: {', '.join(held)}")
             if broken:
                 parts.append(f"streams stopped on a model error: {', '.join(broken)}")
+            if failed:
+                parts.append(f"streams stopped on an internal error: {', '.join(failed)}")
             return False, "not ready: " + "; ".join(parts)
         return True, "ready"
 

@@ -77,6 +77,12 @@ class Metrics:
         self.model_errors = Gauge(
             "casecloud_stream_model_error", "1 while a stream is stopped on a model error (its records are kept as dead letters)", ["stream"], registry=r
         )
+        self.internal_errors = Gauge(
+            "casecloud_stream_internal_error",
+            "1 while a stream is stopped on an internal error of casecloud (its records are kept as dead letters)",
+            ["stream"],
+            registry=r,
+        )
         self.config_ignored = Gauge(
             "casecloud_stream_config_ignored",
             "1 where a filter setting in the config differs from the stream's checkpoint (the checkpoint's is used)",

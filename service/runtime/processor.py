@@ -171,10 +171,12 @@ class RecordProcessor:
         try:
             message, runtime = self._validate(record)
             if runtime.broken is not None:
+                until = ("its spec is fixed and the service restarted" if runtime.broken_reason == "model_error"
+                         else "the service is restarted (on a fixed version)")
                 raise _Reject(
-                    "model_error",
-                    f"stream {runtime.id!r} is stopped on a model error until its spec is fixed and the service "
-                    f"restarted: {runtime.broken}",
+                    runtime.broken_reason,
+                    f"stream {runtime.id!r} is stopped on {'a model' if runtime.broken_reason == 'model_error' else 'an internal'} "
+                    f"error until {until}: {runtime.broken}",
                     runtime.id,
                 )
             if runtime.fresh or runtime.held is not None:
@@ -203,6 +205,14 @@ class RecordProcessor:
             self.metrics.model_errors.labels(runtime.id).set(1)
             log.error("stream %s stopped on a model error: %s", runtime.id, exc)
             rej = _Reject("model_error", f"stream {runtime.id!r} stopped on a model error: {exc}", runtime.id)
+            return await self._dead_letter(record, rej, publish)
+        except Exception as exc:  # noqa: BLE001 - a defect must stop this stream, not the service
+            # The step may have changed the cloud part-way: the stream applies nothing more until a restart
+            # reloads its last checkpoint; this record and the stream's next ones are kept as dead letters.
+            runtime.broken, runtime.broken_reason = f"{type(exc).__name__}: {exc}", "internal_error"
+            self.metrics.internal_errors.labels(runtime.id).set(1)
+            log.exception("stream %s stopped on an internal error at %s|%s@%s", runtime.id, record.topic, record.partition, record.offset)
+            rej = _Reject("internal_error", f"stream {runtime.id!r} stopped on an internal error: {runtime.broken}", runtime.id)
             return await self._dead_letter(record, rej, publish)
         started = time.perf_counter()
         await publish(outputs)

@@ -58,6 +58,8 @@ class StreamRuntime:
     held: str | None = None
     operations: list[dict] = field(default_factory=list)  # operator actions (rebuild, reset), oldest first
     broken: str | None = None  # a model error stopped the stream (in memory only: a restart with a fixed spec clears it)
+    # why: "model_error" (the spec cannot run on this cloud) or "internal_error" (a defect of casecloud's own)
+    broken_reason: str = "model_error"
 
     @property
     def id(self) -> str:
@@ -205,9 +207,12 @@ class StreamRegistry:
         """Streams whose records are held back until an operator restores their state."""
         return sorted(sid for sid, r in self.runtimes.items() if r.held is not None)
 
-    def broken(self) -> list[str]:
-        """Streams stopped on a model error (NaN, negative or infinite rates and the like)."""
-        return sorted(sid for sid, r in self.runtimes.items() if r.broken is not None)
+    def broken(self, reason: str | None = None) -> list[str]:
+        """Streams stopped on a model error (NaN, negative or infinite rates and the like) or on an
+        internal error (``reason``: only those stopped for it)."""
+        return sorted(
+            sid for sid, r in self.runtimes.items() if r.broken is not None and (reason is None or r.broken_reason == reason)
+        )
 
     def _report_config_drift(self, stream_id: str, saved: FilterConfig) -> None:
         """Filter settings in the config that differ from the checkpoint's: the checkpoint's

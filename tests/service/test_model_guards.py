@@ -108,3 +108,51 @@ def test_over_the_file_transport_nothing_is_published_for_a_broken_spec(tmp_path
     letters = [orjson.loads(x) for x in (tmp_path / "out" / "dead_letters.ndjson").read_bytes().splitlines()]
     assert [x["reason"] for x in letters] == ["model_error"] * 5
     assert "is -0.25" in letters[0]["message"] and "'-gamma'" in letters[0]["message"]
+
+
+def test_an_internal_error_stops_only_its_stream_and_keeps_its_records(tmp_path, monkeypatch, caplog):
+    """A defect of casecloud's own in one stream's step (here: an exception raised inside the
+    filter for stream "struck" from its second record on) must not stop the service: other
+    streams go on; the record and the stream's later ones become dead letters ``internal_error``
+    with their bytes; nothing more is published or checkpointed for the stream (its cloud may be
+    half-updated); ``/readyz``, ``casecloud_stream_internal_error`` and a logged traceback say
+    so. Bug caught (it was there): the exception escaped the record loop and the service exited,
+    and on restart met the same record again."""
+    from filters import ParticleFilter
+
+    config = DeploymentConfig.model_validate(
+        {
+            "service": {"seed": 1, "checkpoint_dir": str(tmp_path / "ckpt")},
+            "metrics": {"enabled": False},
+            "streams": [
+                {"id": "struck", "model": "sir", "start": START.isoformat(), "particles": 60, "forecast_trajectories": 10},
+                {"id": "fine", "model": "sir", "start": START.isoformat(), "particles": 50, "forecast_trajectories": 10},
+            ],
+        }
+    )
+    original = ParticleFilter.assimilate
+
+    def flawed(self, time, reports, *args, **kwargs):
+        if self.step_count >= 1 and self.particles.size == 60:  # the stream "struck", from its second record
+            raise IndexError("index 1499 is out of bounds for axis 0 with size 19")
+        return original(self, time, reports, *args, **kwargs)
+
+    monkeypatch.setattr(ParticleFilter, "assimilate", flawed)
+    records = [obs("struck", 1), obs("fine", 1), obs("struck", 2), obs("fine", 2), obs("struck", 3), obs("fine", 3)]
+    transport = MemoryTransport(records)
+    metrics = Metrics(registry=CollectorRegistry())
+    service = Service(config, transport, metrics=metrics, today=lambda: dt.date(2026, 3, 1), pipeline=False)
+    counts = asyncio.run(service.run(until_exhausted=True))
+    assert counts == {"applied": 4, "skipped": 0, "dead_letter": 2}
+    estimates = [orjson.loads(r.value) for r in transport.published["estimates"]]
+    assert [(e["stream"], e["day"]) for e in estimates] == [("struck", 1), ("fine", 1), ("fine", 2), ("fine", 3)]
+    letters = [DeadLetter.model_validate(orjson.loads(r.value)) for r in transport.published["dead_letters"]]
+    assert [(x.stream, x.reason) for x in letters] == [("struck", "internal_error"), ("struck", "internal_error")]
+    assert "IndexError: index 1499" in letters[0].message and "until the service is restarted" in letters[1].message
+    assert [base64.b64decode(x.original_base64) for x in letters] == [records[2], records[4]]
+    struck = sorted(p.name for p in (tmp_path / "ckpt").rglob("*.ckpt") if "struck" in str(p))
+    assert struck == ["000000000001.ckpt"]  # the checkpoint before the failure, nothing after
+    assert metrics.registry.get_sample_value("casecloud_stream_internal_error", {"stream": "struck"}) == 1.0
+    assert "Traceback" in caplog.text or any(r.exc_info for r in caplog.records)
+    service.ready = True
+    assert service.readiness() == (False, "not ready: streams stopped on an internal error: struck")
