@@ -104,6 +104,8 @@ def _spectral_radius(K: list[list[np.ndarray]], n: int) -> np.ndarray:
             disc = half_gap * half_gap + b * c
             # Real pair: |tr/2| + sqrt(disc); complex pair: |lambda|^2 = det = (tr/2)^2 - disc.
             real = np.abs(half_trace) + np.sqrt(np.maximum(disc, 0.0))
+            if np.all(disc >= 0):  # e.g. always for non-negative K: no complex pair to look at
+                return real
             complex_ = np.sqrt(np.maximum(half_trace * half_trace - disc, 0.0))
             return np.where(disc >= 0, real, complex_)
     matrix = np.empty((n, m, m))
