@@ -134,9 +134,10 @@ output_dir = "."                    # estimates.ndjson, alerts.ndjson, dead_lett
 
 [[streams]]
 id = "{DEMO_STREAM}"
-# A shipped example model, or the path of a model spec TOML. This one observes two feeds: daily ED
-# visits per band (final on arrival) and weekly lab positives by specimen date, revised upward as
-# reports arrive (values up to 21 days old are assimilated; each estimate carries their nowcast).
+# A shipped example model, or the path of a model spec TOML. This one observes four feeds: daily ED
+# visits per band (final on arrival), weekly lab positives by specimen date, revised upward as
+# reports arrive (values up to 21 days old are assimilated; each estimate carries their nowcast),
+# the lab's weekday positives out of the tests it ran, and a wastewater site's samples.
 model = "{DEMO_MODEL}"
 start = "{DEMO_START.isoformat()}"                # calendar date of model day 0
 particles = {int(particles)}
@@ -652,8 +653,8 @@ def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
             f"  casecloud backtest --config {config} --history {path(LAB_HISTORY_NAME)} --stream {DEMO_STREAM} "
             f"--out {path('backtest-lab')}",
         ] if lab_backtest else []),
-        "  # fit the ED model's static parameters to the ED history (seir_two_band: the stream's model without the lab",
-        "  # series): a short trial (about half a minute; its diagnostics will ask for more: a real fit uses the",
+        "  # fit the ED model's static parameters to the ED history (seir_two_band: the stream's model with the ED",
+        "  # series only): a short trial (about half a minute; its diagnostics will ask for more: a real fit uses the",
         "  # defaults and runs far longer)",
         f"  casecloud calibrate --model seir_two_band --history {path(HISTORY_NAME)} --start {DEMO_START.isoformat()} "
         f"{' '.join(CALIBRATE_TRIAL)} --out {path('calibration')}",
