@@ -406,20 +406,23 @@ def build_history_report(
     dates = _dates(estimates)
     last_date = dates[-1]
     fingerprints = sorted({e.model_fingerprint for e in estimates})
+    # The cloud's day, not the latest period: a late value for a past period moves nothing back.
+    last_day = latest.cloud_day if latest.cloud_day is not None else latest.day
     page = _Page(out, f"casecloud report: {stream}", f"model {latest.model}, {len(estimates)} updates, "
-                 f"{estimates[0].period} to {latest.period}")
+                 f"{dates[0].isoformat()} to {last_date.isoformat()}")
 
     facts = [
         ("stream", stream),
         ("model", latest.model),
         ("model fingerprint", ", ".join(fingerprints) + ("  (more than one: the model changed)" if len(fingerprints) > 1 else "")),
-        ("data window", f"{estimates[0].period} to {latest.period} (model days {estimates[0].day} to {latest.day})"),
+        ("data window", f"{dates[0].isoformat()} to {last_date.isoformat()} (model days {estimates[0].day} to {last_day})"
+                        + (f"; the latest update was a value for {latest.period}" if last_day != latest.day else "")),
         ("updates", f"{len(estimates)} estimates (steps {estimates[0].step} to {latest.step})"),
         ("particles", f"{latest.particles:,}"),
     ]
     if latest.forecast:
         facts.append(("forecast", f"{latest.forecast.get('n_trajectories')} trajectories, "
-                                  f"{latest.forecast.get('horizon')} days ahead from {latest.period}"))
+                                  f"{latest.forecast.get('horizon')} days ahead from {last_date.isoformat()}"))
     inputs = [f"estimates: {_file_fact(estimates_path)}"]
     if alerts_path:
         inputs.append(f"alerts: {_file_fact(alerts_path)} ({len(alerts)} messages for this stream)")

@@ -24,7 +24,7 @@ import numpy as np  # noqa: E402
 import orjson  # noqa: E402
 import pytest  # noqa: E402
 
-from schemas import AlertMessage  # noqa: E402
+from schemas import AlertMessage, parse_period  # noqa: E402
 from service import cli  # noqa: E402
 from service.analysis.report import (  # noqa: E402
     _alert_periods,
@@ -160,7 +160,12 @@ def test_page_states_facts_cautions_and_window(report, demo):
     assert last["model"] == "seir_two_band_signals" and "seir_two_band_signals" in page
     assert last["model_fingerprint"] in page
     assert STREAM in page
-    assert f"{first['period']} to {last['period']}" in page
+    # The window ends on the day the cloud stands at (a late value for a past period moves nothing back).
+    def cloud_date(e: dict) -> str:
+        shift = (e["cloud_day"] if e.get("cloud_day") is not None else e["day"]) - e["day"]
+        return (parse_period(e["period"]) + dt.timedelta(days=shift)).isoformat()
+
+    assert f"{cloud_date(first)} to {cloud_date(last)}" in page
     assert f"{len(est)} estimates" in page
     # The latest summary row of R_eff carries the latest estimate's numbers.
     q = last["quantities"]["R_eff"]
