@@ -373,6 +373,22 @@ async def _run_service(config: DeploymentConfig, progress, metrics: Metrics) -> 
     return await service.run(until_exhausted=True)
 
 
+def stream_with_a_restart(config: DeploymentConfig, feed: Path, lines: list[bytes], progress, quiet: bool, more: str):
+    """Serve the first three fifths of the feed, stop, append the rest and serve again: the second run
+    resumes from the checkpoints. Returns both runs' counts and their one metrics registry (the
+    counters add up over the restart)."""
+    first = len(lines) * 3 // 5
+    feed.write_bytes(b"\n".join(lines[:first]) + b"\n")
+    metrics = Metrics()
+    counts1 = asyncio.run(_run_service(config, progress, metrics))
+    if not quiet:
+        print(f"  (service stopped; {more}; restarting from checkpoints)", file=sys.stderr)
+    with open(feed, "ab") as f:
+        f.write(b"\n".join(lines[first:]) + b"\n")
+    counts2 = asyncio.run(_run_service(config, progress, metrics))
+    return counts1, counts2, metrics
+
+
 def _start_afresh(out: Path) -> None:
     """Remove what an earlier demo (or the commands it suggested) left in ``out`` that this run would contradict."""
     for name in ("observations.ndjson", "estimates.ndjson", "alerts.ndjson", "dead_letters.ndjson", "committed.json"):
@@ -420,7 +436,6 @@ def run_demo(out: Path, days: int = 120, particles: int = 3000, seed: int = 7, q
     # The demo runs with the file it wrote; environment overrides (e.g.
     # CASECLOUD_CHECKPOINT_DIR) are not applied, so it stays inside ``out``.
     config = load_deployment_config(out / CONFIG_NAME, environ={})
-    first = len(lines) * 3 // 5
     seen = {"n": 0}
     skipped: dict[str, int] = {}
 
@@ -431,18 +446,10 @@ def run_demo(out: Path, days: int = 120, particles: int = 3000, seed: int = 7, q
         if not quiet and (seen["n"] % 25 == 0 or seen["n"] == len(lines)):
             print(f"  record {seen['n']}/{len(lines)}", file=sys.stderr, flush=True)
 
-    feed = out / "observations.ndjson"
-    feed.write_bytes(b"\n".join(lines[:first]) + b"\n")
     if not quiet:
         print(f"casecloud demo: {days} days of made-up ED visits, lab reports, test positivity and wastewater samples, "
               f"{particles} particles -> {out}", file=sys.stderr)
-    metrics = Metrics()  # one registry for both runs: the counters add up over the restart
-    counts1 = asyncio.run(_run_service(config, progress, metrics))
-    if not quiet:
-        print("  (service stopped; more data arrives; restarting from checkpoints)", file=sys.stderr)
-    with open(feed, "ab") as f:
-        f.write(b"\n".join(lines[first:]) + b"\n")
-    counts2 = asyncio.run(_run_service(config, progress, metrics))
+    counts1, counts2, metrics = stream_with_a_restart(config, out / "observations.ndjson", lines, progress, quiet, "more data arrives")
     revisions = metrics.registry.get_sample_value("casecloud_revisions_total", {"stream": DEMO_STREAM}) or 0.0
     # The lab backtest scores nowcasts against complete counts: a week whose reports are all in by the
     # last report day (the history CSV's last as-of date); a short demo has none, and does not offer it.

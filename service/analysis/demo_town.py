@@ -17,7 +17,6 @@ stands, a backtest of the ED history and a short calibration trial.
 
 from __future__ import annotations
 
-import asyncio
 import datetime as dt
 import shlex
 import sys
@@ -29,8 +28,7 @@ import orjson
 from filters import IndividualModel, simulate_season
 from schemas import example_individual_path, example_setting_scenarios_path, load_deployment_config, load_spec
 
-from ..runtime.metrics import Metrics
-from .demo import CONFIG_NAME, HISTORY_NAME, _run_service, _start_afresh
+from .demo import CONFIG_NAME, HISTORY_NAME, _start_afresh, stream_with_a_restart
 
 __all__ = ["TOWN_STREAM", "run_town_demo", "town_next_commands"]
 
@@ -130,16 +128,7 @@ def run_town_demo(out: Path, days: int = 84, particles: int = 1000, seed: int = 
     if not quiet:
         print(f"casecloud demo --town: {days} days in Pellingwold (20,000 people), {particles} towns in the cloud -> {out}",
               file=sys.stderr)
-    first = len(lines) * 3 // 5
-    feed = out / "observations.ndjson"
-    feed.write_bytes(b"\n".join(lines[:first]) + b"\n")
-    metrics = Metrics()
-    counts1 = asyncio.run(_run_service(config, progress, metrics))
-    if not quiet:
-        print("  (service stopped; more days arrive; restarting from checkpoints)", file=sys.stderr)
-    with open(feed, "ab") as f:
-        f.write(b"\n".join(lines[first:]) + b"\n")
-    counts2 = asyncio.run(_run_service(config, progress, metrics))
+    counts1, counts2, _ = stream_with_a_restart(config, out / "observations.ndjson", lines, progress, quiet, "more days arrive")
     summary = summarise_town(out, model, truth, counts1, counts2)
     (out / "summary.txt").write_text(summary, encoding="utf-8")
     return summary
