@@ -26,9 +26,8 @@ bound ``keep_checkpoints`` puts on them. With fewer than 3,000 streams the
 round time and the replicas' memory are also scaled linearly to 3,000 streams
 (labelled as such); the targets are judged on those. Memory is scaled above
 the resident size of a ``serve`` process with one stream (measured too,
-``serve_one_stream_rss_bytes``): every replica loads every configured stream
-at start and at each partition assignment, not only the streams of its own
-partitions, so a replica's memory grows with the fleet, not with its share.
+``serve_one_stream_rss_bytes``), linearly in the fleet, which overstates it: a
+replica keeps only the clouds of its own partitions' streams.
 """
 
 from __future__ import annotations
