@@ -228,7 +228,8 @@ def add_bench_parser(sub) -> None:
         help="comma-separated workloads: update (filter step vs floor and naive loop), "
         "service (end to end through Kafka vs the engine alone), forecast (3 intervention scenarios "
         "with common random numbers vs their binomial floor), feeds (a late value and a revision vs "
-        "a daily step), service_feeds (the service section with three feeds per stream), fleet (a daily "
+        "a daily step), service_feeds (the service section with three feeds per stream), individual (one "
+        "daily step of 1,000 towns of 20,000 people vs its floors), fleet (a daily "
         "round of many streams through two serve processes over Kafka; takes minutes, not in the default); "
         "default: update,service,forecast,feeds",
     )
