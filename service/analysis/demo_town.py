@@ -8,8 +8,8 @@ with symptom onset (children; adults and seniors) are written as an NDJSON
 feed and streamed through the service over the file transport, stopped
 part-way and resumed from the checkpoints.
 
-It ends with how well the estimates tracked the hidden town (the people ever
-infected and infectious now, per age band, and the transmission rates) and the
+It ends with how well the estimates tracked the hidden town (the people still
+susceptible and infectious now, per age band, and the transmission rates) and the
 next commands, each runnable as printed: the report, the checkpoint, the
 school-closure-against-household-quarantine scenarios from the cloud as it
 stands, a backtest of the ED history and a short calibration trial.
