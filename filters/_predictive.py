@@ -137,6 +137,47 @@ def _count_moments(law: PredictiveLaw, p: dict[str, np.ndarray]) -> tuple[np.nda
     return n * q, var
 
 
+# A wide mixture (early in a stream, particles' expected counts spanning orders of magnitude) is not
+# laid out on a grid of whole numbers: above this many cells (grid x components) its levels are found
+# by bisection on the mixture's closed-form cdf.
+MAX_GRID_CELLS = 4_000_000
+_CLOSED_FORM = ("poisson", "negbin", "binomial")
+
+
+def _count_predictive_by_bisection(law: PredictiveLaw, p, w, observed, levels, lo: int, hi: int, mean_i) -> Predictive:
+    """The same summary as the grid's, for a law with a closed-form cdf: for each level the smallest
+    whole number k with P(Y <= k) >= level, by bisection on k; the mid-PIT from the cdfs at y."""
+
+    def cdf(k: int) -> float:  # P(Y <= k) of the mixture
+        return float(w @ _count_cdf_below(law, p, k + 1))
+
+    if law.family == "binomial":
+        hi = min(hi, int(np.max(p["trials"])))
+    while lo > 0 and cdf(lo - 1) >= levels.min():
+        lo = max(0, lo - (hi - lo) - 1)
+    while cdf(hi) < levels.max() and not (law.family == "binomial" and hi >= int(np.max(p["trials"]))):
+        hi = 2 * hi + 1
+    quantiles = {}
+    for q in levels:
+        a, b = lo - 1, hi  # cdf(a) < q <= cdf(b) (cdf(-1) = 0)
+        while b - a > 1:
+            mid = (a + b) // 2
+            if cdf(mid) >= q:
+                b = mid
+            else:
+                a = mid
+        quantiles[float(q)] = float(b) + law.offset
+    pit = None
+    y = None if observed is None else float(observed) - law.offset
+    if y is not None and y < 0:
+        pit = 0.0
+    elif y is not None:
+        k = int(y)
+        pit = float(w @ _count_cdf_below(law, p, k) + 0.5 * (w @ np.exp(_count_logpmf(law, p, np.array([float(k)])))[:, 0]))
+        pit = min(1.0, max(0.0, pit))
+    return Predictive(observed, quantiles, float(w @ mean_i) + law.offset, pit)
+
+
 def _count_predictive(law: PredictiveLaw, p, w, observed, probs) -> Predictive:
     """The mixture's cumulative distribution on a grid of whole numbers: exact on the grid (the
     mass left of it from each particle's cdf), the grid widened until it holds the top level."""
@@ -146,9 +187,15 @@ def _count_predictive(law: PredictiveLaw, p, w, observed, probs) -> Predictive:
     y = None if observed is None else float(observed) - law.offset
     lo = max(0, math.floor(float(np.min(mean_i - 4.5 * sd_i))))
     hi = math.ceil(float(np.max(mean_i + 4.5 * sd_i))) + 1
-    if y is not None and y >= 0:
+    # The grid spans the mixture's mass and the value, unless the value lies far out in a tail with a
+    # closed-form cdf (a count of 10^9 against a mean of 10^4 must not allocate 10^9 cells a particle).
+    far = (y is not None and law.family in ("poisson", "negbin", "binomial")
+           and (int(y) - hi > max(1000, 4 * (hi - lo)) or lo - int(y) > max(1000, 4 * (hi - lo))))
+    if y is not None and y >= 0 and not far:
         lo, hi = min(lo, max(0, int(y) - 1)), max(hi, int(y) + 1)
     top = int(np.max(p["trials"])) if law.family in ("binomial", "betabinomial") else None
+    if law.family in _CLOSED_FORM and (hi - lo) * w.size > MAX_GRID_CELLS:
+        return _count_predictive_by_bisection(law, p, w, observed, levels, lo, hi, mean_i)
     while True:
         if top is not None:
             hi = min(hi, top)
@@ -167,6 +214,10 @@ def _count_predictive(law: PredictiveLaw, p, w, observed, probs) -> Predictive:
     pit = None
     if y is not None and y < 0:  # below the total already known: impossible under the law
         pit = 0.0
+    elif far:
+        k = int(y)
+        below = float(w @ _count_cdf_below(law, p, k))
+        pit = float(below + 0.5 * (w @ np.exp(_count_logpmf(law, p, np.array([float(k)])))[:, 0]))
     elif y is not None and int(y) - lo >= ks.size:
         # Above the grid, which then ends at the largest number of trials of any particle (a binomial
         # law): the value is impossible under every particle and all the mass lies below it.
@@ -175,6 +226,8 @@ def _count_predictive(law: PredictiveLaw, p, w, observed, probs) -> Predictive:
         i = int(y) - lo
         below = cdf[i - 1] if i >= 1 else float(w @ _count_cdf_below(law, p, int(y)))
         pit = float(below + 0.5 * (cdf[i] - below))
+    if pit is not None:  # sums of many pmf terms can pass 1 by rounding
+        pit = min(1.0, max(0.0, pit))
     return Predictive(observed, quantiles, float(w @ mean_i) + law.offset, pit)
 
 
@@ -215,6 +268,8 @@ def _level_predictive(law: PredictiveLaw, p, w, observed, probs, lod) -> Predict
     p_lod = None if lod is None else float(cdf(np.array([math.log(lod)]))[0])
     if observed is None:
         pit = None if p_lod is None else 0.5 * p_lod
+    elif observed <= 0:  # only the particles that shed nothing put mass there (mid-PIT of that point mass)
+        pit = 0.5 * at_zero
     else:
         pit = float(cdf(np.array([math.log(observed)]))[0])
     return Predictive(observed, quantiles, mean, pit, p_lod)

@@ -75,6 +75,49 @@ def test_a_count_above_every_particles_trials_is_judged_not_crashed(family):
         assert [p.quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(mix, PROBS, 19)
 
 
+@pytest.mark.parametrize("value", [1e9, 20_000.0])
+def test_a_count_far_out_in_a_tail_is_judged_without_a_grid_to_it(value):
+    """A count far beyond the mixture's mass (the schema allows up to 10^9) is judged by the laws'
+    closed-form cdfs, not by a grid reaching it (10^9 cells a particle ran out of memory): the PIT is
+    the mixture's P(Y < y) + P(Y = y) / 2 from scipy, the quantiles those of the mixture without it."""
+    law = PredictiveLaw("negbin", {"mean": np.array([1e4, 3e3]), "size": np.array([50.0, 5.0])})
+    w = np.array([0.3, 0.7])
+    p = one_step_predictive(law, w, value, PROBS)
+    q = [stats.nbinom(50.0, 50.0 / (50.0 + 1e4)), stats.nbinom(5.0, 5.0 / (5.0 + 3e3))]
+    expected = sum(wi * (d.cdf(value - 1) + 0.5 * d.pmf(value)) for wi, d in zip(w, q))
+    # 20,000 is still near enough for the grid: its cumulative sum of ~10^4 pmf terms rounds at ~1e-12
+    assert p.pit == pytest.approx(expected, rel=0, abs=1e-10)
+    assert p.quantiles == one_step_predictive(law, w, None, PROBS).quantiles
+
+
+def test_a_wide_mixture_is_summarised_by_bisection_exactly_as_on_a_grid():
+    """512 particles whose expected counts span 10 to 20,000 (a stream early on, with a wide prior)
+    would need a grid of 10^7 cells: the levels are found by bisection on the mixture's cdf instead
+    (a grid this size took seconds and hundreds of MB). Reference: the brute-force quantiles of the
+    scipy Poisson mixture over every whole number up to 25,000, and its mid-PIT."""
+    from filters._predictive import MAX_GRID_CELLS
+
+    means = np.geomspace(10.0, 20_000.0, 512)
+    w = np.random.default_rng(3).dirichlet(np.ones(512))
+    assert (20_700 - 0) * 512 > MAX_GRID_CELLS  # this case takes the bisection path
+    p = one_step_predictive(PredictiveLaw("poisson", {"mean": means}), w, 4321.0, PROBS)
+
+    def mix(y):
+        return w @ stats.poisson.cdf(np.asarray(y)[None, :], means[:, None])
+
+    assert [p.quantiles[q] for q in PROBS] == _discrete_mixture_quantiles(mix, PROBS, 25_000)
+    expected = float(w @ (stats.poisson.cdf(4320, means) + 0.5 * stats.poisson.pmf(4321, means)))
+    assert p.pit == pytest.approx(expected, rel=1e-12)
+
+
+def test_a_level_of_zero_is_judged_by_the_mass_at_zero():
+    """Particles that shed nothing put a point mass at 0; a level of exactly 0 gets the mid-PIT of
+    that mass (not a log of 0)."""
+    law = PredictiveLaw("lognormal", {"median": np.array([0.0, 50.0]), "sd": np.array([0.3, 0.3])})
+    p = one_step_predictive(law, np.array([0.4, 0.6]), 0.0, PROBS)
+    assert p.pit == pytest.approx(0.2)
+
+
 def test_one_particle_levels_are_scipys_lognormal_and_t():
     law = PredictiveLaw("lognormal", {"median": np.array([300.0]), "sd": np.array([0.4])})
     p = one_step_predictive(law, ONE, 450.0, PROBS, lod=100.0)
