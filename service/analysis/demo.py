@@ -630,24 +630,37 @@ def _nowcast_lines(last: dict, lab: list[LabWeek]) -> list[str]:
     return lines
 
 
-def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
-    """The closing lines: what to run next, each command runnable as printed from the
-    directory the demo ran in (paths are ``out`` as given, quoted for a POSIX shell).
-    ``lab_backtest``: offer the backtest of the lab vintages (a demo of a few weeks has no
-    complete lab week to score, so it does not)."""
-    d = str(out)
+def quoted_in(out: Path):
+    """``name -> out/name`` quoted for a POSIX shell, as the printed commands spell paths."""
 
     def path(name: str) -> str:
-        return shlex.quote(str(Path(d) / name))
+        return shlex.quote(str(Path(str(out)) / name))
 
-    config = path(CONFIG_NAME)
+    return path
+
+
+def first_next_commands(out: Path, checkpoint_note: str) -> list[str]:
+    """The opening lines of a demo's next commands: the report and the checkpoint."""
+    path = quoted_in(out)
     return [
         "Next, from the directory you ran the demo in (each line runs as printed):",
         "  # pictures: an HTML page of the estimates, forecasts, alerts and feed",
         f"  casecloud report --estimates {path('estimates.ndjson')} --alerts {path('alerts.ndjson')} "
         f"--observations {path('observations.ndjson')} --out {path('report')}",
-        "  # the cloud as saved: step, period, particles, effective sample size, alert states (--json: everything)",
-        f"  casecloud checkpoint show --config {config}",
+        f"  # {checkpoint_note}",
+        f"  casecloud checkpoint show --config {path(CONFIG_NAME)}",
+    ]
+
+
+def next_commands(out: Path, lab_backtest: bool = True) -> list[str]:
+    """The closing lines: what to run next, each command runnable as printed from the
+    directory the demo ran in (paths are ``out`` as given, quoted for a POSIX shell).
+    ``lab_backtest``: offer the backtest of the lab vintages (a demo of a few weeks has no
+    complete lab week to score, so it does not)."""
+    path = quoted_in(out)
+    config = path(CONFIG_NAME)
+    return [
+        *first_next_commands(out, "the cloud as saved: step, period, particles, effective sample size, alert states (--json: everything)"),
         "  # what if: school closure and vaccination scenarios from the cloud as it stands, against no change",
         f"  casecloud scenario --config {config} --stream {DEMO_STREAM} --scenarios {path(SCENARIO_EXAMPLE + '.toml')} "
         f"--out {path('scenarios')}",

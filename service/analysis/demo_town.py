@@ -18,7 +18,6 @@ stands, a backtest of the ED history and a short calibration trial.
 from __future__ import annotations
 
 import datetime as dt
-import shlex
 import sys
 from pathlib import Path
 
@@ -28,7 +27,7 @@ import orjson
 from filters import IndividualModel, simulate_season
 from schemas import example_individual_path, example_setting_scenarios_path, load_deployment_config, load_spec
 
-from .demo import CONFIG_NAME, HISTORY_NAME, _start_afresh, stream_with_a_restart
+from .demo import CONFIG_NAME, HISTORY_NAME, _start_afresh, first_next_commands, quoted_in, stream_with_a_restart
 
 __all__ = ["TOWN_STREAM", "run_town_demo", "town_next_commands"]
 
@@ -185,18 +184,10 @@ def summarise_town(out: Path, model: IndividualModel, truth, counts1: dict, coun
 
 def town_next_commands(out: Path) -> list[str]:
     """The closing lines: each runnable as printed from the directory the demo ran in."""
-
-    def path(name: str) -> str:
-        return shlex.quote(str(Path(str(out)) / name))
-
+    path = quoted_in(out)
     config = path(CONFIG_NAME)
     return [
-        "Next, from the directory you ran the demo in (each line runs as printed):",
-        "  # pictures: an HTML page of the estimates, forecasts, alerts and feed",
-        f"  casecloud report --estimates {path('estimates.ndjson')} --alerts {path('alerts.ndjson')} "
-        f"--observations {path('observations.ndjson')} --out {path('report')}",
-        "  # the cloud as saved",
-        f"  casecloud checkpoint show --config {config}",
+        *first_next_commands(out, "the cloud as saved"),
         "  # what if: schools closed, households of detected cases at home, or half attendance at work",
         f"  casecloud scenario --config {config} --stream {TOWN_STREAM} --scenarios {path(TOWN_SCENARIOS + '.toml')} "
         f"--trajectories 200 --out {path('scenarios')}",
