@@ -13,6 +13,8 @@ import os
 import sys
 from collections.abc import Callable, Sequence
 
+from .allocator import tune_allocator
+
 __all__ = ["main", "build_parser"]
 
 # The per-particle matrix products are small; BLAS threads only add contention
@@ -64,6 +66,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         stream=sys.stderr,
     )
     handler: Callable[[argparse.Namespace], int] = args.handler
+    tune_allocator()
     try:
         return handler(args)
     except BrokenPipeError:
