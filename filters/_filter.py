@@ -33,7 +33,9 @@ class FilterConfig:
     scheme : 'systematic' (default), 'stratified', 'residual' or 'multinomial'.
     liu_west_discount : None to disable, else delta in (0, 1) (e.g. 0.99):
         static parameters are shrunk toward their weighted mean and jittered
-        after each resampling (Liu & West 2001), a = (3 delta - 1) / (2 delta).
+        after each resampling (Liu & West 2001), a = (3 delta - 1) / (2 delta);
+        parameters a model learns from each particle's path instead are moved
+        by its ``move_parameters`` after every weighting. None: neither.
     summary_probs : quantile levels reported in summaries.
     """
 
@@ -192,6 +194,9 @@ class ParticleFilter:
         resampled = ess < self.config.resample_threshold * n
         if resampled:
             self._resample(weights)
+        move = getattr(self.model, "move_parameters", None)
+        if move is not None and self.config.liu_west_discount is not None:
+            move(self.particles, self.rng)
         return StepResult(self.time, self.step_count, total, ess, resampled, False, summary)
 
     def _resample(self, weights: np.ndarray) -> None:

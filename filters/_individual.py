@@ -78,6 +78,23 @@ basic reproduction number, and it falls with the susceptible share as the
 next-generation R_eff of the compartmental models does; with households it
 also falls as cases' households are already infected. It is NaN when no one
 was infectious in the window.
+
+Learning the transmission rates
+-------------------------------
+A static parameter used only as places' transmission rates or as the
+importation rate, with a prior on [0, inf), is learned from each particle's
+own contacts rather than by Liu-West jitter. Every contact a case makes at a
+place whose rate is ``beta`` is one of Poisson(``beta x e``) contacts, ``e``
+the case's exposure there (``m/(m - 1)`` or the community factor, times its
+weight and the interventions' factor); imports are Poisson(``iota``) a day.
+So given the particle's path, ``beta``'s likelihood is ``beta^M exp(-beta E)``
+with ``M`` all contacts made at its places (whether they infected anyone or
+not) and ``E`` the summed exposure. ``ParticleSet.stats`` keeps ``(M, E)`` per
+learned parameter and particle (two float64 columns each), carried through
+resampling and checkpoints; after each weighting the filter calls
+:meth:`IndividualModel.move_parameters`, which redraws the rate from its
+conditional posterior (:mod:`filters._rate_learning`). Parameters the series
+read (reporting shares, dispersions) stay with Liu-West.
 """
 
 from __future__ import annotations
@@ -94,6 +111,7 @@ from ._compartmental import ModelError, _shift_days
 from ._particles import ParticleSet
 from ._population import Population, build_population
 from ._priors import ParameterScales, from_unconstrained, sample_prior, to_unconstrained
+from ._rate_learning import learnable_prior, move_rates
 from ._reports import ReportingCdfTable
 from ._series import ObservedSeries, compile_series, mask_groups
 
@@ -105,10 +123,37 @@ SYMPTOMATIC_BASE = 127  # infectious with symptoms: 127 + days left - 1
 ASYMPTOMATIC_BASE = 190  # infectious without symptoms: 190 + days left - 1
 R_WINDOW = 7
 _ACTIVE_BELOW = np.uint8(253)  # latent or infectious
-_ONE = np.uint8(1)
 # People per block when drawing the initial state (bounds its temporary memory;
 # a fixed number so the draws do not depend on the machine).
 _INITIAL_BLOCK = 64
+# A day on for each code of someone latent or infectious: one day less, the last
+# infectious day to recovered (latent 0 becomes 255 here and its infectious code is
+# written over it).
+_NEXT_CODE = np.arange(-1, 255).astype(np.uint8)
+_NEXT_CODE[[SYMPTOMATIC_BASE, ASYMPTOMATIC_BASE]] = RECOVERED
+
+
+def _repeat_index(counts: np.ndarray) -> np.ndarray:
+    """``np.repeat(np.arange(counts.size), counts)``, by marking where each run ends
+    (several times faster for many short runs)."""
+    ends = np.cumsum(counts)
+    total = int(ends[-1]) if ends.size else 0
+    marks = np.bincount(ends[:-1], minlength=total + 1)[:total]
+    return np.cumsum(marks)
+
+
+def _stable_order(values: np.ndarray, bound: int) -> np.ndarray:
+    """``np.argsort(values, kind="stable")`` for integers in [0, bound): one sort of
+    (value, position) packed in an int64, so the keys are unique and any sort
+    algorithm gives the same order."""
+    shift = max(int(values.size).bit_length(), 1)
+    if bound >= 1 << (62 - shift):  # does not fit: sort the values themselves
+        return np.argsort(values, kind="stable")
+    keys = values.astype(np.int64) << shift
+    keys |= np.arange(values.size, dtype=np.int64)
+    keys.sort()
+    keys &= (1 << shift) - 1
+    return keys
 
 
 def period_pmf(period: Any, shortest: int) -> tuple[np.ndarray, np.ndarray]:
@@ -151,7 +196,13 @@ class _Table:
         self.mean = float(days @ probs)
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        return self.days[np.minimum(np.searchsorted(self.cdf, u, side="right"), self.days.size - 1)]
+        return self.days[self.index(u)]
+
+    def index(self, u: np.ndarray) -> np.ndarray:
+        """Which entry of ``days`` each uniform in [0, 1) picks."""
+        out = np.searchsorted(self.cdf, u, side="right")
+        np.minimum(out, self.days.size - 1, out=out)
+        return out
 
     def laplace(self, theta: float) -> float:
         """E[exp(-theta D)]."""
@@ -206,6 +257,14 @@ class IndividualModel(ObservedSeries, ParameterScales):
         self.relative = float(d.asymptomatic_infectiousness)
         # Mean weighted infectious person-days of one infection, by band.
         self.lifetime = self.infectious.mean * (1.0 - self.asymptomatic + self.asymptomatic * self.relative)
+        self._asymptomatic_of = self.asymptomatic[self.population.band]  # by person
+        # Rows of the place factors for cases with symptoms (0 .. people - 1) and without
+        # (people .. 2 people - 1: times the relative infectiousness), one gather per case.
+        self._case_factor = np.concatenate([self._person_factor, self._person_factor * self.relative])
+        # The code of an infectious period of k + 1 days (the table's k-th day), with symptoms
+        # (first row) or without.
+        days = self.infectious.days
+        self._infectious_code = np.stack([SYMPTOMATIC_BASE - 1 + days, ASYMPTOMATIC_BASE - 1 + days]).astype(np.uint8)
         # History slots.
         self.slots = [
             "infection", "onset", "infectious", "recovery",
@@ -227,9 +286,21 @@ class IndividualModel(ObservedSeries, ParameterScales):
         self.window_days = self.default_window_days if window_days is None else int(window_days)
         if not 0 <= self.window_days <= 120:
             raise ModelError(f"window_days must be between 0 and 120, got {self.window_days}")
+        series_columns: set[int] = set()
+
+        def resolve_for_series(ref: Any, where: str) -> int | None:
+            col = self._resolve(ref, where)
+            if col is not None:
+                series_columns.add(col)
+            return col
+
         self.series, history_days = compile_series(
-            spec.series, self.groups, lambda s: self._slot[s.flow], self._resolve, self.window_days
+            spec.series, self.groups, lambda s: self._slot[s.flow], resolve_for_series, self.window_days
         )
+        self._learned = self._learned_rates(series_columns)
+        learned = {col for col, _, _ in self._learned}
+        self.static_parameters = np.array([j for j in self.static_parameters if j not in learned], dtype=np.intp)
+        self.learned_parameters = np.array(sorted(learned), dtype=np.intp)
         # R_eff reads R_WINDOW days; one more keeps the stocks at the start of the window.
         self.history_days = max(history_days, R_WINDOW + 1)
         self._series_by_name = {s.name: s for s in self.series}
@@ -237,6 +308,18 @@ class IndividualModel(ObservedSeries, ParameterScales):
         self._mask_groups = mask_groups(self.series)
 
     # --------------------------------------------------------------- compile
+    def _learned_rates(self, series_columns: set[int]) -> list[tuple[int, np.ndarray, bool]]:
+        """(column, places, importation) of each static parameter learned from the particles'
+        own contacts: used only as places' rates or the importation rate, with a prior on
+        [0, inf) (see "Learning the transmission rates" in the module docstring)."""
+        out = []
+        for j, (name, p) in enumerate(self.spec.parameters.items()):
+            places = np.array([k for k, (_, col) in enumerate(self._beta) if col == j], dtype=np.intp)
+            imported = self._iota[1] == j
+            if p.kind == "static" and (places.size or imported) and j not in series_columns and learnable_prior(p.prior):
+                out.append((j, places, bool(imported)))
+        return out
+
     def _value(self, ref: float | str, where: str) -> tuple[float, int | None]:
         col = self._resolve(ref, where)
         return (0.0, col) if col is not None else (float(ref), None)
@@ -305,10 +388,14 @@ class IndividualModel(ObservedSeries, ParameterScales):
         starts.append(self._band_start[:-1] + offset_members if not self._homogeneous else np.array([offset_members]))
         sizes.append(bands if not self._homogeneous else np.array([pop.size]))
         members.append(self._band_members if not self._homogeneous else np.arange(pop.size, dtype=np.int32))
-        self._place_of[:, -1] = offset_places if self._homogeneous else offset_places + pop.band
+        self._place_of[:, -1] = offset_places if self._homogeneous else offset_places + pop.band.astype(np.int64)
         self._place_start = np.concatenate(starts).astype(np.int64)
         self._place_size = np.concatenate(sizes).astype(np.int64)
         self._place_members = np.concatenate(members).astype(np.int32)
+        # By (person, kind) flattened: where the person's place starts and its size
+        # (a float, as it multiplies a uniform), one gather each per contact.
+        self._start_of = self._place_start[self._place_of].reshape(-1)
+        self._size_of = self._place_size[self._place_of].reshape(-1).astype(float)
 
     # -------------------------------------------------------------- protocol
     def initial(self, n: int, rng: np.random.Generator) -> ParticleSet:
@@ -349,14 +436,15 @@ class IndividualModel(ObservedSeries, ParameterScales):
             block[rows[as_i], people] = self._infectious_codes(people, rng)
         history = np.zeros((n, self.history_days, len(self.slots), self.n_groups), dtype=np.int32)
         history[:, 0, self._stocks, :] = self._stage_counts(codes)
-        return ParticleSet(states=codes, params=params, history=history)
+        return ParticleSet(states=codes, params=params, history=history, stats=np.zeros((n, 2 * len(self._learned))))
 
     def _infectious_codes(self, people: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """Codes of people starting an infectious period: asymptomatic by their band's share, days drawn."""
         u = rng.random((people.size, 2))
-        silent = u[:, 0] < self.asymptomatic[self.population.band[people]]
-        days = self.infectious(u[:, 1])
-        return (np.where(silent, ASYMPTOMATIC_BASE - 1, SYMPTOMATIC_BASE - 1) + days).astype(np.uint8)
+        silent = u[:, 0] < np.take(self._asymptomatic_of, people)
+        day = self.infectious.index(np.ascontiguousarray(u[:, 1]))
+        day += silent * self._infectious_code.shape[1]
+        return np.take(self._infectious_code, day)
 
     def _stage_counts(self, codes: np.ndarray) -> np.ndarray:
         """(n, 5, bands) people in S, E, I with symptoms, I without, R by band (a full scan; used at the start only)."""
@@ -399,12 +487,38 @@ class IndividualModel(ObservedSeries, ParameterScales):
         codes = particles.states
         if not codes.flags.c_contiguous:
             particles.states = codes = np.ascontiguousarray(codes)
+        learning = self._learning_stats(particles)
         for day in range(t0, t1):
             self._drift(particles.params, rng)
             # (n, places + 1) rate factors of the interventions in force (last column: importation), or None.
             factors = None if effects is None else effects.factors(day, particles.params.shape[0])
             quarantine = None if effects is None else effects.quarantine(codes)
-            self._day(codes, particles.params, particles.history, rng, factors, quarantine, day)
+            self._day(codes, particles.params, particles.history, rng, factors, quarantine, day, learning)
+
+    def _learning_stats(self, particles: ParticleSet) -> np.ndarray | None:
+        """The (n, 2 x learned) running contacts and exposures, or None when nothing is learned."""
+        if not self._learned:
+            return None
+        stats_ = particles.stats
+        if stats_.shape != (particles.size, 2 * len(self._learned)):
+            names = [self.param_names[col] for col, _, _ in self._learned]
+            raise ModelError(
+                f"model {self.spec.name!r} learns {names} from each particle's contacts and needs "
+                f"{2 * len(self._learned)} statistics per particle; this cloud has {stats_.shape[1]} "
+                "(saved before they were kept?): rebuild the stream from its history (casecloud stream rebuild)"
+            )
+        return stats_
+
+    def move_parameters(self, particles: ParticleSet, rng: np.random.Generator) -> None:
+        """Redraw each learned rate from its conditional posterior given the particle's own
+        contacts (one Metropolis-Hastings step, :func:`filters._rate_learning.move_rates`);
+        the filter calls it after weighting. Weights are unchanged."""
+        learning = self._learning_stats(particles)
+        if learning is None:
+            return
+        for i, (col, _, _) in enumerate(self._learned):
+            prior = self.spec.parameters[self.param_names[col]].prior
+            particles.params[:, col] = move_rates(particles.params[:, col], learning[:, 2 * i], learning[:, 2 * i + 1], prior, rng)
 
     def _day(
         self,
@@ -415,6 +529,7 @@ class IndividualModel(ObservedSeries, ParameterScales):
         factors: np.ndarray | None,
         quarantine: Any = None,
         day: int = 0,
+        learning: np.ndarray | None = None,
     ) -> None:
         n, P = codes.shape
         C = len(self.places)
@@ -429,46 +544,54 @@ class IndividualModel(ObservedSeries, ParameterScales):
         # 2. Infectious contacts: each case makes a Poisson number over all its places
         # (rate of place k: beta_k x m/(m - 1) x weight), each contact's place drawn in
         # proportion to its rate, its target uniformly among that place's members.
+        # cum[j, k]: case j's rates of places 0..k summed.
         # np.take gathers rows several times faster than fancy indexing.
-        rates = np.take(self._rates(params, None if factors is None else factors[:, :-1]), inf_particle, axis=0)
-        rates *= np.take(self._person_factor, inf_person, axis=0)
-        if self.relative != 1.0:  # asymptomatic cases: a column of weights, cheaper than a boolean row gather
-            rates *= np.where(code[inf_at] >= ASYMPTOMATIC_BASE, self.relative, 1.0)[:, None]
+        row = inf_person + (code[inf_at] >= ASYMPTOMATIC_BASE) * P  # asymptomatic cases: the weighted rows
+        cum = np.take(self._case_factor, row, axis=0)
+        del row
         household = self.population.households.venue
         if quarantine is not None:  # cases whose household stays at home infect no one outside it
-            rates[quarantine.home(inf_particle, household[inf_person], day), 1:] = 0.0
-        total = rates[:, 0].copy()
+            cum[quarantine.home(inf_particle, household[inf_person], day), 1:] = 0.0
+        if learning is not None:
+            exposure = self._exposure(cum, inf_particle, n, factors)
+        cum *= np.take(self._rates(params, None if factors is None else factors[:, :-1]), inf_particle, axis=0)
         for k in range(1, C):
-            total += rates[:, k]
-        source = np.repeat(np.arange(inf.size), rng.poisson(total))
+            cum[:, k] += cum[:, k - 1]
+        source = _repeat_index(rng.poisson(cum[:, -1]))
         u = rng.random((source.size, 2))
-        mine = np.take(rates, source, axis=0)
-        del rates
-        x = u[:, 0] * np.take(total, source)
-        del total
-        place = np.zeros(source.size, dtype=np.int8)
-        reached = mine[:, 0].copy()
-        for k in range(1, C):
-            place += reached <= x
-            reached += mine[:, k]
-        del mine, reached, x
-        who = np.take(inf_person, source)
-        row = np.take(self._place_of.reshape(-1), who * C + place)
-        if not self._homogeneous:
+        mine = np.take(cum, source, axis=0)
+        del cum
+        x = u[:, 0] * mine[:, -1]
+        place = (mine[:, 0] <= x).view(np.int8)
+        for k in range(1, C - 1):
+            place += mine[:, k] <= x
+        del mine, x
+        slot = np.take(inf_person, source) * C + place
+        start = np.take(self._start_of, slot)
+        size = np.take(self._size_of, slot)
+        if not self._homogeneous:  # community contacts: the target's band drawn by the contact matrix
             community = np.flatnonzero(place == C - 1)
-            cdf = self._community_cdf[self.population.band[who[community]]]
-            row[community] = self._community_place + np.minimum((cdf <= rng.random(community.size)[:, None]).sum(axis=1), self.n_groups - 1)
-        target = self._place_members[self._place_start[row] + (u[:, 1] * self._place_size[row]).astype(np.int64)]
-        contacted = np.take(inf_particle, source) * P + target
+            cdf = self._community_cdf[self.population.band[inf_person[source[community]]]]
+            row = self._community_place + np.minimum((cdf <= rng.random(community.size)[:, None]).sum(axis=1), self.n_groups - 1)
+            start[community], size[community] = self._place_start[row], self._place_size[row]
+        size *= u[:, 1]
+        start += size.astype(np.int64)
+        del slot, size, u
+        by_particle = np.take(inf_particle, source)
+        contacted = by_particle * P + np.take(self._place_members, start)
+        if learning is not None:  # contacts made, by particle and place (wasted or not: all count)
+            made = np.bincount(by_particle * C + place, minlength=n * C).reshape(n, C)
         if quarantine is not None:  # and no one outside it reaches them
-            out = (place > 0) & quarantine.home(np.take(inf_particle, source), household[target], day)
+            out = (place > 0) & quarantine.home(by_particle, household[contacted % P], day)
             contacted, place = contacted[~out], place[~out]
-        del who, row, target, u
+        del start, source, by_particle
         # Importation: Poisson(iota) contacts per particle from outside, each to a uniformly chosen person.
         iota = self._column(params, self._iota[1], self._iota[0])
         if factors is not None:
             iota = iota * factors[:, -1]  # the last column scales importation
         imports = rng.poisson(np.broadcast_to(np.maximum(iota, 0.0), (n,)))
+        if learning is not None:
+            self._learn(learning, made, exposure, imports, None if factors is None else factors[:, -1])
         particle = np.repeat(np.arange(n), imports)
         imported = (rng.random(particle.size) * P).astype(np.int64)
         if quarantine is not None:
@@ -479,7 +602,7 @@ class IndividualModel(ObservedSeries, ParameterScales):
         hit = np.flatnonzero(flat[contacted] == SUSCEPTIBLE)
         contacted, cause = contacted[hit], cause[hit]
         # A person contacted more than once is infected once, by one of their contacts chosen uniformly.
-        order = np.argsort(contacted, kind="stable")
+        order = _stable_order(contacted, n * P)
         ranked = contacted[order]
         first = np.ones(ranked.size, dtype=bool)
         np.not_equal(ranked[1:], ranked[:-1], out=first[1:])
@@ -493,14 +616,13 @@ class IndividualModel(ObservedSeries, ParameterScales):
         cause = cause[order[pick]].astype(np.intp)
         # 3. A day passes for everyone latent or infectious since the morning.
         ends_latent = np.flatnonzero(code == 0)
-        recovers = np.flatnonzero((code == SYMPTOMATIC_BASE) | (code == ASYMPTOMATIC_BASE))
+        moved = np.take(_NEXT_CODE, code)
+        recovers = np.flatnonzero(moved == RECOVERED)
         recovered_silent = code[recovers] == ASYMPTOMATIC_BASE
-        code -= _ONE
-        code[recovers] = RECOVERED
         started = active[ends_latent]
         started_code = self._infectious_codes(started % P, rng)
-        code[ends_latent] = started_code
-        flat[active] = code
+        flat[active] = moved
+        flat[started] = started_code
         # 4. The day's infected start their latent period (or, with 0 days, their infectious one).
         latent = self.latent(rng.random(infected.size))
         new_code = (latent - 1).astype(np.uint8)  # latent 0 wraps to 255 and is overwritten below
@@ -516,23 +638,47 @@ class IndividualModel(ObservedSeries, ParameterScales):
         # 5. The day's counts.
         self._tally(history, n, infected, cause, onset, onset_code, active[recovers], recovered_silent)
 
+    def _exposure(self, rows: np.ndarray, particle: np.ndarray, n: int, factors: np.ndarray | None) -> np.ndarray:
+        """(n, places): each particle's day of exposure per unit rate, the sum over its cases of
+        m/(m - 1) (or the community factor) x weight x the interventions' factor (``rows``:
+        the cases' factors times weights, quarantined places already 0; ``particle`` sorted)."""
+        bounds = np.searchsorted(particle, np.arange(n + 1))
+        some = bounds[:-1] < bounds[1:]
+        out = np.zeros((n, rows.shape[1]))
+        if some.any():
+            out[some] = np.add.reduceat(rows, bounds[:-1][some], axis=0)
+        if factors is not None:
+            out *= factors[:, :-1]
+        return out
+
+    def _learn(self, learning: np.ndarray, made: np.ndarray, exposure: np.ndarray, imports: np.ndarray, import_factor: np.ndarray | None) -> None:
+        """Add the day's contacts and exposure to each learned rate's running statistics."""
+        for i, (_, places, imported) in enumerate(self._learned):
+            learning[:, 2 * i] += made[:, places].sum(axis=1)
+            learning[:, 2 * i + 1] += exposure[:, places].sum(axis=1)
+            if imported:
+                learning[:, 2 * i] += imports
+                learning[:, 2 * i + 1] += 1.0 if import_factor is None else import_factor
+
     def _tally(self, history, n, infected, cause, onset, onset_code, recovered, recovered_silent) -> None:
         """Count the day's events by particle, slot and band, and carry the stocks forward."""
         P, B, S = self.people, self.n_groups, len(self.slots)
         band = self.population.band
         slot = self._slot
-        keys = []
 
-        def add(flat_index: np.ndarray, slots: np.ndarray | int) -> None:
+        def base(flat_index: np.ndarray) -> np.ndarray:  # key of slot 0: (particle, band)
             particle = flat_index // P
-            keys.append((particle * S + slots) * B + band[flat_index - particle * P])
+            return particle * (S * B) + np.take(band, flat_index - particle * P)
 
-        add(infected, slot["infection"])
-        add(infected, self._cause0 + cause)
-        add(onset, slot["infectious"])
-        add(onset[onset_code < ASYMPTOMATIC_BASE], slot["onset"])
-        add(recovered, slot["recovery"])
-        add(recovered[recovered_silent], slot["recovery.asymptomatic"])
+        infected_at, onset_at, recovered_at = base(infected), base(onset), base(recovered)
+        keys = [
+            infected_at + slot["infection"] * B,
+            infected_at + (self._cause0 + cause) * B,
+            onset_at + slot["infectious"] * B,
+            onset_at[onset_code < ASYMPTOMATIC_BASE] + slot["onset"] * B,
+            recovered_at + slot["recovery"] * B,
+            recovered_at[recovered_silent] + slot["recovery.asymptomatic"] * B,
+        ]
         counts = np.bincount(np.concatenate(keys), minlength=n * S * B).reshape(n, S, B).astype(history.dtype)
         _shift_days(history)
         infection, infectious, onsets = counts[:, slot["infection"]], counts[:, slot["infectious"]], counts[:, slot["onset"]]

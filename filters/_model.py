@@ -72,6 +72,11 @@ class Model(Protocol):
         Columns of ``params`` that are static (receive Liu-West jitter).
     to_unconstrained(params) / from_unconstrained(values)
         Maps between natural and unconstrained scales for those columns.
+    move_parameters(particles, rng) -> None
+        An MCMC move on parameters the model learns from each particle's own
+        path (kept in ``particles.stats``), leaving the weights as they are;
+        called after every weighting when static parameters are learned online
+        (``liu_west_discount`` set), in place of the Liu-West jitter for them.
     """
 
     def initial(self, n: int, rng: np.random.Generator) -> ParticleSet: ...

@@ -25,18 +25,25 @@ class ParticleSet:
         reporting delays and weekly totals. May have a zero-length day axis.
     log_weights : ndarray of shape (n_particles,)
         Unnormalised log-weights.
+    stats : ndarray of shape (n_particles, n_stats), float
+        Running statistics of each particle's own path that a model keeps
+        (e.g. the sufficient statistics of parameters it learns from the
+        path); no columns for models that keep none.
     """
 
     states: np.ndarray
     params: np.ndarray
     history: np.ndarray
     log_weights: np.ndarray = field(default=None)  # type: ignore[assignment]
+    stats: np.ndarray = field(default=None)  # type: ignore[assignment]
 
     def __post_init__(self) -> None:
         n = self.states.shape[0]
         if self.log_weights is None:
             self.log_weights = np.zeros(n)
-        for name in ("params", "history", "log_weights"):
+        if self.stats is None:
+            self.stats = np.zeros((n, 0))
+        for name in ("params", "history", "log_weights", "stats"):
             arr = getattr(self, name)
             if arr.shape[0] != n:
                 raise ValueError(
@@ -55,15 +62,20 @@ class ParticleSet:
             params=self.params[index],
             history=self.history[index],
             log_weights=self.log_weights[index],
+            stats=self.stats[index],
         )
 
     def arrays(self) -> dict[str, np.ndarray]:
-        return {
+        """The named arrays (``stats`` only when the model keeps some)."""
+        out = {
             "states": self.states,
             "params": self.params,
             "history": self.history,
             "log_weights": self.log_weights,
         }
+        if self.stats.shape[1]:
+            out["stats"] = self.stats
+        return out
 
     @classmethod
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> "ParticleSet":
@@ -75,4 +87,5 @@ class ParticleSet:
             params=np.array(arrays["params"], dtype=float),
             history=np.array(arrays["history"]),
             log_weights=np.array(arrays["log_weights"], dtype=float),
+            stats=np.array(arrays["stats"], dtype=float) if "stats" in arrays else None,
         )

@@ -40,7 +40,6 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from schemas import Beta, Gamma, LogNormal, Normal, Uniform
 
 from ._filter import FilterConfig, ParticleFilter
 from ._observation import Observation

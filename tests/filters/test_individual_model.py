@@ -245,6 +245,39 @@ def test_r_eff_in_a_homogeneous_town_is_r0_times_the_susceptible_share():
     assert abs(ratio.mean() - 1) < tol, (ratio.mean(), tol)
 
 
+@pytest.mark.parametrize("case_band", [0, 1])
+def test_community_contact_matrix_sets_each_bands_infection_rate(case_band):
+    """With ``community_contact`` C (rows the band infected, columns the infecting
+    band), each susceptible of band a is infected at rate beta C[a, b] / N_b by one
+    case of band b (schemas: "Susceptibles of band a are infected at rate
+    beta_c sum_b C[a, b] I_b / N_b", the usual who-acquires-infection-from-whom
+    convention), so on the first day the infections in band a are
+    Binomial(N_a - [a = b], 1 - exp(-beta C[a, b] / N_b)). Bugs caught: the matrix read
+    transposed (adults infected by a child at 1/300 instead of 0.5/300: 37 standard
+    errors off), targets drawn uniformly over the town, the case's own band size
+    used for N_a. Band: 4.5 standard errors of the mean over the particles."""
+    beta, particles = 0.3, 4000
+    contact = [[4.0, 1.0], [0.5, 2.0]]
+    model = individual({
+        "population": {"name": "t", "seed": 5, "size": 1000, "bands": [{"name": "child", "share": 0.3}, {"name": "adult", "share": 0.7}],
+                       "households": {"size": {"dist": "discrete", "values": [1], "weights": [1.0]}}},
+        "transmission": {"community": beta, "community_contact": contact},
+        "disease": {"latent": {"dist": "discrete", "days": [2], "weights": [1.0]},
+                    "infectious": {"dist": "discrete", "days": [5], "weights": [1.0]}},
+    })
+    counts = model.population.band_counts()
+    ps = model.initial(particles, gen(41))
+    case = int(np.flatnonzero(model.population.band == case_band)[0])
+    ps.states[:, case] = SYMPTOMATIC_BASE + 4  # infectious, 5 days left
+    model.advance(ps, 0, 1, gen(42))
+    infected = ps.history[:, 0, model._slot["infection"], :]
+    for a in range(2):
+        at_risk = counts[a] - (a == case_band)
+        p = 1 - math.exp(-beta * contact[a][case_band] / counts[case_band])
+        se = math.sqrt(at_risk * p * (1 - p) / particles)
+        assert abs(infected[:, a].mean() - at_risk * p) < 4.5 * se, (a, infected[:, a].mean(), at_risk * p, se)
+
+
 def test_r_eff_leaves_out_imported_infections():
     """A town whose cases infect no one (every rate 0) but that keeps importing
     infections has R_eff = 0 wherever someone was infectious. Bug caught: imported

@@ -16,7 +16,6 @@ import math
 
 import numpy as np
 import orjson
-import pytest
 from scipy import optimize, stats
 
 from filters import CompartmentalModel

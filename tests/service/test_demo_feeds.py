@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import datetime as dt
 import re
-from pathlib import Path
 
 import numpy as np
 import orjson
