@@ -45,7 +45,7 @@ name = "hamlet_flu"
 population = "hamlet_town.toml"
 window_days = 4
 [transmission]
-household = 0.5
+household = "beta_home"
 community = "beta"
 importation = 0.3
 settings = { school = 0.4 }
@@ -58,6 +58,9 @@ asymptomatic_infectiousness = 0.5
 kind = "drifting"
 prior = { dist = "lognormal", mean_log = -1.4, sd_log = 0.3 }
 volatility = 0.05
+[parameters.beta_home]
+kind = "static"
+prior = { dist = "lognormal", mean_log = -0.7, sd_log = 0.3 }
 [parameters.rho]
 kind = "static"
 prior = { dist = "beta", a = 6.0, b = 14.0 }
@@ -137,7 +140,8 @@ def test_estimates_forecasts_and_alerts_of_an_individual_based_stream(tmp_path):
 
 def test_restart_from_the_checkpoint_is_bit_identical(tmp_path):
     """Bug caught: state the checkpoint does not carry (the towns, their history, the
-    generator) so a resumed stream drifts from an uninterrupted one."""
+    generator, the running statistics of the learned household rate) so a resumed
+    stream drifts from an uninterrupted one."""
     records = _records()
     _, straight, _ = _run(_config(tmp_path, tmp_path / "straight"), records)
     _, first, _ = _run(_config(tmp_path, tmp_path / "split"), records[:6])
@@ -147,6 +151,7 @@ def test_restart_from_the_checkpoint_is_bit_identical(tmp_path):
     b = LocalCheckpointStore(tmp_path / "split").load_latest(STREAM, expected_fingerprint=None)
     assert a.path.read_bytes() == b.path.read_bytes()
     assert a.checkpoint.arrays["states"].dtype.str == "|u1"
+    assert a.checkpoint.arrays["stats"].shape[1] == 2  # contacts and exposure of beta_home
     assert second.published["alerts"], "the comparison should cover alerts published after the restart"
     split = first.published["estimates"] + second.published["estimates"]
     assert [r.value for r in split] == [r.value for r in straight.published["estimates"]]
