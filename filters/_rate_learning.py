@@ -12,9 +12,12 @@ from that conditional at any step without looking back at its history. That
 is an MCMC move which leaves the filter's target ``p(path, beta | data)``
 invariant, so the weights stay as they are: the resample-move filter of Gilks
 & Berzuini (2001), with the conditional kept by sufficient statistics as in
-Storvik (2002) and Fearnhead (2002). Made every day, it keeps the particles'
-rates as spread as the posterior is, where Liu-West's kernel (a Gaussian
-mixture shrunk towards the mean) runs narrow.
+Storvik (2002) and Fearnhead (2002). Made every day, it redraws each
+particle's rate from its own path's conditional instead of shrinking the rates
+towards their mean and jittering them (Liu-West); how well the cloud then
+spans the rates' posterior is limited, as for any function of the paths, by
+how many distinct paths resampling leaves (measured in
+tests/filters/test_individual_filter.py).
 
 The move is one independence Metropolis-Hastings step whose proposal is
 ``Gamma(a0 + M, b0 + E)``, ``(a0, b0)`` the gamma with the prior's mean and

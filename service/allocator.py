@@ -7,10 +7,10 @@ defaults adapt the first threshold but keep the second low, so a step that
 allocates and frees tens of megabytes of temporaries every day gets its pages
 back zeroed and faults them in again on every step. Measured on a daily step of
 1,000 towns x 20,000 people (``casecloud bench --sections individual``): 8,000
-page faults and about 20 ms of an 80 ms step; with the thresholds below, none.
+page faults and 15-20 ms of a 75-80 ms step; with the thresholds below, none.
 
 The thresholds (glibc ``mallopt(3)``): requests up to 32 MiB come from the heap
-(the largest value glibc accepts) and up to 256 MiB may stay free at its top.
+(above every temporary of a step of 1,000 x 20,000) and up to 256 MiB may stay free at its top.
 The process keeps pages it has used once instead of returning them, so its
 resident size stays near its peak between steps; the peak itself does not grow.
 
