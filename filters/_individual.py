@@ -142,18 +142,18 @@ def _repeat_index(counts: np.ndarray) -> np.ndarray:
     return np.cumsum(marks)
 
 
-def _stable_order(values: np.ndarray, bound: int) -> np.ndarray:
-    """``np.argsort(values, kind="stable")`` for integers in [0, bound): one sort of
-    (value, position) packed in an int64, so the keys are unique and any sort
-    algorithm gives the same order."""
+def _stable_sort(values: np.ndarray, bound: int) -> tuple[np.ndarray, np.ndarray]:
+    """(sorted values, ``np.argsort(values, kind="stable")``) for integers in [0, bound):
+    one sort of (value, position) packed in an int64, so the keys are unique and any
+    sort algorithm gives the same order."""
     shift = max(int(values.size).bit_length(), 1)
     if bound >= 1 << (62 - shift):  # does not fit: sort the values themselves
-        return np.argsort(values, kind="stable")
+        order = np.argsort(values, kind="stable")
+        return values[order], order
     keys = values.astype(np.int64) << shift
     keys |= np.arange(values.size, dtype=np.int64)
     keys.sort()
-    keys &= (1 << shift) - 1
-    return keys
+    return keys >> shift, keys & ((1 << shift) - 1)
 
 
 def period_pmf(period: Any, shortest: int) -> tuple[np.ndarray, np.ndarray]:
@@ -440,9 +440,9 @@ class IndividualModel(ObservedSeries, ParameterScales):
 
     def _infectious_codes(self, people: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """Codes of people starting an infectious period: asymptomatic by their band's share, days drawn."""
-        u = rng.random((people.size, 2))
-        silent = u[:, 0] < np.take(self._asymptomatic_of, people)
-        day = self.infectious.index(np.ascontiguousarray(u[:, 1]))
+        u = rng.random((2, people.size))
+        silent = u[0] < np.take(self._asymptomatic_of, people)
+        day = self.infectious.index(u[1])
         day += silent * self._infectious_code.shape[1]
         return np.take(self._infectious_code, day)
 
@@ -602,8 +602,7 @@ class IndividualModel(ObservedSeries, ParameterScales):
         hit = np.flatnonzero(flat[contacted] == SUSCEPTIBLE)
         contacted, cause = contacted[hit], cause[hit]
         # A person contacted more than once is infected once, by one of their contacts chosen uniformly.
-        order = _stable_order(contacted, n * P)
-        ranked = contacted[order]
+        ranked, order = _stable_sort(contacted, n * P)
         first = np.ones(ranked.size, dtype=bool)
         np.not_equal(ranked[1:], ranked[:-1], out=first[1:])
         starts = np.flatnonzero(first)
@@ -663,23 +662,26 @@ class IndividualModel(ObservedSeries, ParameterScales):
     def _tally(self, history, n, infected, cause, onset, onset_code, recovered, recovered_silent) -> None:
         """Count the day's events by particle, slot and band, and carry the stocks forward."""
         P, B, S = self.people, self.n_groups, len(self.slots)
+        causes = len(self.places) + 1  # places and importation
         band = self.population.band
         slot = self._slot
 
-        def base(flat_index: np.ndarray) -> np.ndarray:  # key of slot 0: (particle, band)
+        def at(flat_index: np.ndarray) -> np.ndarray:  # (particle, band) as one key
             particle = flat_index // P
-            return particle * (S * B) + np.take(band, flat_index - particle * P)
+            return particle * B + np.take(band, flat_index - particle * P)
 
-        infected_at, onset_at, recovered_at = base(infected), base(onset), base(recovered)
-        keys = [
-            infected_at + slot["infection"] * B,
-            infected_at + (self._cause0 + cause) * B,
-            onset_at + slot["infectious"] * B,
-            onset_at[onset_code < ASYMPTOMATIC_BASE] + slot["onset"] * B,
-            recovered_at + slot["recovery"] * B,
-            recovered_at[recovered_silent] + slot["recovery.asymptomatic"] * B,
-        ]
-        counts = np.bincount(np.concatenate(keys), minlength=n * S * B).reshape(n, S, B).astype(history.dtype)
+        def count(keys: np.ndarray) -> np.ndarray:
+            return np.bincount(keys, minlength=n * B).reshape(n, B)
+
+        infected_at, onset_at, recovered_at = at(infected), at(onset), at(recovered)
+        counts = np.zeros((n, S, B), dtype=history.dtype)
+        counts[:, slot["infection"]] = count(infected_at)
+        by_cause = np.bincount(infected_at * causes + cause, minlength=n * B * causes).reshape(n, B, causes)
+        counts[:, self._cause0 : self._cause0 + causes] = by_cause.transpose(0, 2, 1)
+        counts[:, slot["infectious"]] = count(onset_at)
+        counts[:, slot["onset"]] = count(onset_at[onset_code < ASYMPTOMATIC_BASE])
+        counts[:, slot["recovery"]] = count(recovered_at)
+        counts[:, slot["recovery.asymptomatic"]] = count(recovered_at[recovered_silent])
         _shift_days(history)
         infection, infectious, onsets = counts[:, slot["infection"]], counts[:, slot["infectious"]], counts[:, slot["onset"]]
         recovery, silent_recovery = counts[:, slot["recovery"]], counts[:, slot["recovery.asymptomatic"]]
