@@ -29,11 +29,13 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import optimize, stats
 
 import schemas
 from filters import CompartmentalModel, IndividualModel
-from filters._individual import RECOVERED, SUSCEPTIBLE, SYMPTOMATIC_BASE, period_pmf
+from filters._individual import RECOVERED, SUSCEPTIBLE, SYMPTOMATIC_BASE, _repeat_index, _stable_sort, period_pmf
 
 ALPHA = 1e-4
 
@@ -389,3 +391,25 @@ def test_codes_hold_stage_and_days_left():
     assert [o for _, o in stages] == [1, 0, SYMPTOMATIC_BASE + 2, SYMPTOMATIC_BASE + 1, SYMPTOMATIC_BASE, RECOVERED, RECOVERED, RECOVERED]
     onsets = ps.history[0, :8, model._slot["onset"], 0][::-1]
     assert onsets.tolist() == [0, 0, 1, 0, 0, 0, 0, 0]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 6), max_size=60))
+def test_repeat_index_is_numpys_repeat(counts):
+    """The step's faster stand-in for ``np.repeat(np.arange(k), counts)`` (zero counts at
+    either end or in runs included). Bug caught: a case with 0 contacts at the end of the
+    array shifting every later source."""
+    c = np.array(counts, dtype=np.int64)
+    np.testing.assert_array_equal(_repeat_index(c), np.repeat(np.arange(c.size), c))
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 40), max_size=80), st.sampled_from([41, 1 << 61]))
+def test_stable_sort_is_numpys_stable_argsort(values, bound):
+    """Sorted values and ``np.argsort(kind="stable")``, by packed keys and (for a bound too
+    large to pack) the fallback. Bug caught: ties taken out of their original order,
+    which would change which contact infects a person contacted twice."""
+    v = np.array(values, dtype=np.int64)
+    ranked, order = _stable_sort(v, bound)
+    np.testing.assert_array_equal(order, np.argsort(v, kind="stable"))
+    np.testing.assert_array_equal(ranked, np.sort(v))
