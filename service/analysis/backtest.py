@@ -528,8 +528,8 @@ def _quantile_scores(q: Any, sc: dict[str, Any], k: int) -> dict[str, Any]:
     }
 
 
-def _score_block(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
-    """Scores of (M, k) draws against k observations."""
+def _sample_scores(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
+    """Quantiles, WIS, CRPS and 50 % / 90 % interval coverage of (M, k) draws against k values."""
     q = np.quantile(draws, _LEVELS, axis=0)  # (23, k)
     return {
         "q": q,
@@ -537,9 +537,12 @@ def _score_block(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
         "crps": crps_from_samples(draws, y),
         "cov50": ((q[_IDX[0.25]] <= y) & (y <= q[_IDX[0.75]])).astype(float),
         "cov90": ((q[_IDX[0.05]] <= y) & (y <= q[_IDX[0.95]])).astype(float),
-        "log": log_score_from_samples(draws, y),
-        "bias": bias(draws, y),
     }
+
+
+def _score_block(draws: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
+    """Scores of (M, k) draws against k observations."""
+    return {**_sample_scores(draws, y), "log": log_score_from_samples(draws, y), "bias": bias(draws, y)}
 
 
 def _realised(history, series: str) -> tuple[np.ndarray, np.ndarray, list[str]]:
@@ -753,13 +756,8 @@ def _score_levels(draws: np.ndarray, y: np.ndarray, lods: list[float | None], lo
     floor = np.array([0.0 if v is None else v for v in lods])
     x = np.maximum(draws, floor)
     yy = np.maximum(y, floor)
-    q = np.quantile(x, _LEVELS, axis=0)
     return {
-        "q": q,
-        "wis": weighted_interval_score(_LEVELS, q, yy),
-        "crps": crps_from_samples(x, yy),
-        "cov50": ((q[_IDX[0.25]] <= yy) & (yy <= q[_IDX[0.75]])).astype(float),
-        "cov90": ((q[_IDX[0.05]] <= yy) & (yy <= q[_IDX[0.95]])).astype(float),
+        **_sample_scores(x, yy),
         "log": np.asarray(log_scores, dtype=float),
         "bias": 1.0 - 2.0 * np.mean(x <= yy, axis=0),
     }
