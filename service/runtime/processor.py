@@ -168,8 +168,10 @@ class RecordProcessor:
         outcome carries a snapshot for the caller to write (and only then
         commit), so the write can overlap the next record's step.
         """
+        runtime: StreamRuntime | None = None
+        new_stream = False  # this record is the first a new stream (no checkpoint, no earlier observation) is judged by
         try:
-            message, runtime = self._validate(record)
+            message, runtime = self._parse(record)
             if runtime.broken is not None:
                 until = ("its spec is fixed and the service restarted" if runtime.broken_reason == "model_error"
                          else "the service is restarted (on a fixed version)")
@@ -180,9 +182,11 @@ class RecordProcessor:
                     runtime.id,
                 )
             if runtime.fresh or runtime.held is not None:
-                runtime = await self._guard_lost_state(runtime, record)
+                runtime, new_stream = await self._guard_lost_state(runtime, record)
+            self._check(record, message, runtime)
         except _Reject as rej:
-            return await self._dead_letter(record, rej, publish)
+            outcome = await self._dead_letter(record, rej, publish)
+            return await self._keep_prior(runtime, outcome, defer_checkpoint) if new_stream else outcome
         key = f"{record.topic}|{record.partition}"
         if key in runtime.positions and record.offset <= runtime.positions[key]:
             self.metrics.skipped.labels(runtime.id, "already_applied").inc()
@@ -190,7 +194,8 @@ class RecordProcessor:
         try:
             plan = self._plan(runtime, message)
         except _Reject as rej:
-            return await self._dead_letter(record, rej, publish)
+            outcome = await self._dead_letter(record, rej, publish)
+            return await self._keep_prior(runtime, outcome, defer_checkpoint) if new_stream else outcome
         for r in plan.skipped:
             self.metrics.skipped.labels(runtime.id, r).inc()
         if plan.skipped and not plan.reports:
@@ -223,14 +228,30 @@ class RecordProcessor:
         await self.write_checkpoint(checkpoint)
         return Outcome("applied", None, runtime.id, outputs)
 
-    async def _guard_lost_state(self, runtime: StreamRuntime, record: Record) -> StreamRuntime:
+    async def _keep_prior(self, runtime: StreamRuntime, outcome: Outcome, defer_checkpoint: bool) -> Outcome:
+        """Checkpoint a new stream's cloud, still its prior, when its first record was refused.
+
+        The record stays consumed on its partition; without a checkpoint the lost-state guard
+        would take it, after a restart, as proof that the stream was advanced and lost its
+        state, and hold a stream that never had any. The checkpoint holds what the service
+        holds in memory (the prior cloud and its random-number state), so the stream goes
+        on from it exactly as an uninterrupted service would."""
+        checkpoint = runtime.to_checkpoint()
+        if defer_checkpoint:
+            outcome.checkpoint = checkpoint
+        else:
+            await self.write_checkpoint(checkpoint)
+        return outcome
+
+    async def _guard_lost_state(self, runtime: StreamRuntime, record: Record) -> tuple[StreamRuntime, bool]:
         """Never start a stream from its prior when it was advanced before and lost its state.
 
         A stream without a checkpoint is new only if no valid observation of it was
         consumed before this record on the same partition. Otherwise it is held: its
         records become dead letters ``needs_recovery`` (bytes kept; a rebuild from the
         input applies them) until an operator rebuilds or resets it, which the
-        service notices at the stream's next record.
+        service notices at the stream's next record. Returns the stream's runtime and
+        whether it was just found new.
         """
         sid = runtime.id
         if runtime.held is not None:
@@ -239,11 +260,11 @@ class RecordProcessor:
                 raise _Reject("needs_recovery", f"stream {sid!r} is held: {runtime.held}", sid)
             self.metrics.needs_recovery.labels(sid).set(0)
             log.warning("stream %s: a checkpoint appeared (step %s); its records are applied again", sid, reloaded.filter.step_count)
-            return reloaded
+            return reloaded, False
         evidence = await self._earlier_observation(sid, record) if self.earlier is not None else None
         if evidence is None:
             runtime.fresh = False
-            return runtime
+            return runtime, True
         runtime.held = (
             f"its observation at {evidence.topic}[{evidence.partition}] offset {evidence.offset} was consumed before, "
             "but the stream has no checkpoint: its state was lost. Rebuild it from its history "
@@ -306,7 +327,8 @@ class RecordProcessor:
         return info
 
     # ------------------------------------------------------------- validation
-    def _validate(self, record: Record) -> tuple[ObservationMessage, StreamRuntime]:
+    def _parse(self, record: Record) -> tuple[ObservationMessage, StreamRuntime]:
+        """The record as an observation message of a configured stream, and that stream."""
         limit = self.config.service.max_message_bytes
         if len(record.value) > limit:
             raise _Reject("oversized", f"record is {len(record.value)} bytes; at most {limit} allowed")
@@ -327,6 +349,11 @@ class RecordProcessor:
                 f"stream {message.stream!r} is not configured; configured: {sorted(self.registry.streams)}",
                 message.stream,
             )
+        return message, runtime
+
+    def _check(self, record: Record, message: ObservationMessage, runtime: StreamRuntime) -> None:
+        """What the message must satisfy for its stream: series it observes, periods in range,
+        values of each series' kind."""
         known = {s.name for s in runtime.model.series}
         concentrations = {k: v for k, v in (message.concentrations or {}).items() if v is not None}
         unknown = sorted((set(message.counts) | set(concentrations)) - known)
@@ -390,7 +417,6 @@ class RecordProcessor:
                 raise _Reject("bad_as_of", f"as_of {message.as_of} is before period {message.period} begins ({first_day}); nothing can be known of it yet", message.stream)
             if as_of > horizon:
                 raise _Reject("bad_as_of", f"as_of {message.as_of} is after {horizon} (today plus {self.config.service.max_future_days} days)", message.stream)
-        return message, runtime
 
     def _plan(self, runtime: StreamRuntime, message: ObservationMessage) -> _Plan:
         """Sort each series value of a message: new, late, a revision, a duplicate or an older vintage.

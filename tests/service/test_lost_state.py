@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import orjson
+import pytest
 from prometheus_client import CollectorRegistry
 
 from schemas import DeadLetter, DeploymentConfig
@@ -144,6 +145,41 @@ def test_a_held_stream_resumes_without_restart_once_rebuilt(tmp_path):
     assert registry.held() == [STREAM]
     rebuild_stream(site.config, STREAM, show_progress=False)
     assert registry.reload(STREAM) is not None and registry.held() == []
+
+
+def refused_first(kind: str) -> bytes:
+    """A first record of the stream that passes the observation schema but is refused for the stream."""
+    period = (START + dt.timedelta(days=1)).isoformat()
+    value = {
+        "unknown_series": {"stream": STREAM, "period": period, "counts": {"visits": 3}},  # the stream observes "cases"
+        "future": {"stream": STREAM, "period": (TODAY + dt.timedelta(days=400)).isoformat(), "counts": {"cases": 3}},
+        "cadence": {"stream": STREAM, "period": "2026-W02", "counts": {"cases": 3}},  # a daily series
+    }[kind]
+    return orjson.dumps(value) + b"\n"
+
+
+@pytest.mark.parametrize("kind", ["unknown_series", "future", "cadence"])
+def test_a_new_stream_whose_first_record_is_refused_is_not_held(tmp_path, kind):
+    # Bug caught: the refused first record of a new stream (a feed being wired in, its first
+    # message wrong) counted as proof that the stream had been advanced, so the stream was
+    # held as "lost state" at its next record, in the same run or after a restart, until an
+    # operator reset it. The stream never had a cloud: nothing is held, and a restart between
+    # the refused record and the next ones ends on the very cloud of an uninterrupted run.
+    through = Site(tmp_path / "through")
+    through.feed.write_bytes(refused_first(kind))
+    through.append(range(2, 8))
+    assert through.serve() == {"applied": 6, "skipped": 0, "dead_letter": 1}
+    assert [x["reason"] for x in through.outputs("dead_letters")] == [kind]
+
+    restarted = Site(tmp_path / "restarted")
+    restarted.feed.write_bytes(refused_first(kind))
+    assert restarted.serve() == {"applied": 0, "skipped": 0, "dead_letter": 1}
+    kept = restarted.cloud()  # the prior, kept so the restart knows the stream is new
+    assert kept.header["filter"]["step"] == 0 and kept.header["positions"] == {}
+    restarted.append(range(2, 8))
+    assert restarted.serve() == {"applied": 6, "skipped": 0, "dead_letter": 0}
+    assert restarted.metrics.registry.get_sample_value("casecloud_stream_needs_recovery", {"stream": STREAM}) in (None, 0.0)
+    same_cloud(restarted.cloud(), through.cloud())
 
 
 def test_reset_archives_and_starts_from_the_prior_with_the_next_record(tmp_path):
