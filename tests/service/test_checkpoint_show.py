@@ -121,3 +121,15 @@ def test_unknown_stream_is_named_with_the_place_looked_in(tmp_path, capsys):
     code, out, err = _show(capsys, "--checkpoint-dir", str(tmp_path), "--stream", "ward-east")
     assert code == 1 and out == ""
     assert err.strip() == f"casecloud: stream 'ward-east' has no checkpoint under {tmp_path}"
+
+
+def test_a_cloud_that_has_assimilated_nothing_says_so(tmp_path, capsys):
+    # A new stream whose first record was refused is checkpointed at its prior (step 0, no period):
+    # the summary says so instead of printing "None (model day None; ...".
+    header = _header() | {"last_day": None, "last_period": None, "positions": {}}
+    checkpoint = Checkpoint("ward-new", 0, header, {"log_weights": np.zeros(10), "states": np.zeros((10, 2, 4), dtype=np.int64)})
+    LocalCheckpointStore(tmp_path).write(checkpoint)
+    code, out, _ = _show(capsys, "--checkpoint-dir", str(tmp_path))
+    assert code == 0
+    assert "  last period    none yet: the cloud is still its prior (model seir_two_band, fingerprint fp-1)" in out.splitlines()
+    assert "None" not in out
