@@ -7,10 +7,11 @@ JSON Schema files for each are exported to ``schemas/json/`` (see
 from __future__ import annotations
 
 import datetime as dt
+import math
 import re
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictInt, ValidationError, WithJsonSchema, field_validator, model_validator
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, StrictInt, ValidationError, WithJsonSchema, field_validator, model_validator
 
 __all__ = [
     "StreamId",
@@ -61,6 +62,20 @@ class _Message(BaseModel):
 Measurement = Annotated[float, Field(strict=True, allow_inf_nan=False)]
 
 
+def _written_whole(value: Any) -> Any:
+    """A JSON number with no fractional part (``21.0``, ``1e3``) as the whole number it writes:
+    JSON Schema's ``integer`` admits it, and so does the published contract. Anything else
+    (``21.5``, ``"21"``, ``true``, or a float too large to be exact, above 2^53) is left to the
+    strict check, which refuses it."""
+    if isinstance(value, float) and math.isfinite(value) and value.is_integer() and abs(value) <= 2.0**53:
+        return int(value)
+    return value
+
+
+# A count or a number of tests: a whole number from 0 to MAX_COUNT.
+WholeCount = Annotated[StrictInt, Field(ge=0, le=MAX_COUNT), BeforeValidator(_written_whole)]
+
+
 class Concentration(_Message):
     """One sample of a concentration series (e.g. gene copies per litre of wastewater).
 
@@ -94,7 +109,7 @@ class ObservationMessage(_Message):
 
     stream: StreamId
     period: Period = Field(description="a day YYYY-MM-DD, or an ISO week YYYY-Www for weekly streams")
-    counts: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] = Field(
+    counts: dict[SeriesName, WholeCount | None] = Field(
         max_length=64, description="count series: whole numbers (at least 1 entry here or in 'concentrations')"
     )
     concentrations: dict[SeriesName, Concentration | None] | None = Field(
@@ -102,7 +117,7 @@ class ObservationMessage(_Message):
         max_length=64,
         description="concentration series (e.g. wastewater): one sample each, {value, lod, flow}; null: not reported",
     )
-    tests: dict[SeriesName, Annotated[StrictInt, Field(ge=0, le=MAX_COUNT)] | None] | None = Field(
+    tests: dict[SeriesName, WholeCount | None] | None = Field(
         default=None,
         max_length=64,
         description="for positivity series only: the number of tests behind each series' positives in 'counts' "

@@ -22,6 +22,8 @@ valid JSON that is not an object           ``[1, 2, 3]``, ``42``         ``schem
 missing field / extra field / wrong type   no ``period``; ``"x": 1``     ``schema``
 negative count                             ``"cases": -3``               ``bad_count``
 fractional count                           ``"cases": 2.5``              ``bad_count``
+(a whole number with a decimal point,      ``"cases": 12.0``             applied as 12
+``12.0``, is a count: not bad input)
 the string ``"NaN"`` as a count            ``"cases": "NaN"``            ``bad_count``
 absurd count (> 1e9)                       ``5000000000``, ``1e30``      ``bad_count``
 unknown stream                             ``"stream": "region-south"``  ``unknown_stream``
@@ -172,6 +174,20 @@ def test_fractional_count(harness, kit):
     run_case(harness, kit, kit.obs(6, 2.5), "bad_count", ["counts.cases", "2.5", "valid integer"])
 
 
+def test_a_whole_number_written_with_a_decimal_point_is_that_count(tmp_path, kit):
+    # Our published JSON Schema says "integer", which JSON Schema (2020-12, section 6.1.1 of the
+    # validation vocabulary: "a number with a zero fractional part") satisfies with 12.0, as a
+    # feed exported from a float column writes it. Bug caught: the service dead-lettering as
+    # bad_count a message its own contract accepts. 12.0 is applied exactly as 12.
+    runs = {}
+    for name, count in [("int", b"12"), ("float", b"12.0"), ("exponent", b"1.2e1")]:
+        record = b'{"stream":"%s","period":"%s","counts":{"cases":%s}}' % (kit.STREAM.encode(), kit.period(6).encode(), count)
+        h = kit.Harness(tmp_path / name, [kit.obs(4), kit.obs(5), record])
+        assert h.run() == {"applied": 3, "skipped": 0, "dead_letter": 0}
+        runs[name] = (h.trace[-1]["cloud"], [r.value for r in h.transport.published["estimates"]])
+    assert runs["float"] == runs["int"] and runs["exponent"] == runs["int"]
+
+
 def test_nan_literal_is_malformed_json(harness, kit):
     # JSON has no NaN: the literal is a syntax error, not a count
     bad = b'{"stream": "region-north.ed", "period": "2026-01-07", "counts": {"cases": NaN}}'
@@ -187,7 +203,7 @@ def test_nan_string_is_bad_count(harness, kit):
     [
         (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":5000000000}}', "5000000000"),
         (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":1000000000000000000000000000000}}', "1e+30"),
-        (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":1e12}}', "1000000000000.0"),
+        (b'{"stream":"region-north.ed","period":"2026-01-07","counts":{"cases":1e12}}', "1000000000000"),
     ],
     ids=["5e9", "1e30-integer-literal", "1e12-float"],
 )
