@@ -112,8 +112,10 @@ def format_checkpoint_summary(stream: str, report: dict, data: bytes | None) -> 
         return "\n".join(lines + ["  (the header cannot be read: nothing more can be said)"])
     model = header.get("model", "-")
     fingerprint = filt.get("model_fingerprint") or header.get("model_fingerprint")
-    period = (f"{header.get('last_period', '-')} (model day {header.get('last_day', '-')}; " if header.get("last_period") is not None
-              else "none yet: the cloud is still its prior (")
+    if "last_period" in header and header["last_period"] is None:  # a new stream's prior, kept before any record applied
+        period = "none yet: the cloud is still its prior ("
+    else:
+        period = f"{header.get('last_period', '-')} (model day {header.get('last_day', '-')}; "
     lines.append(f"  last period    {period}model {model}" + (f", fingerprint {fingerprint})" if fingerprint else ")"))
     config = filt.get("config") if isinstance(filt.get("config"), dict) else {}
     particles = config.get("n_particles", "-")
